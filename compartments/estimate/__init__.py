@@ -1,0 +1,1 @@
+"""Estimation stages: physics-informed network, likelihood fit, uncertainty."""

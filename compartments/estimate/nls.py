@@ -1,0 +1,199 @@
+"""Stage 2: maximum likelihood on the exact model solution (scipy).
+
+Two steps from each start:
+
+1. **Weighted least squares** (``scipy.optimize.least_squares``, trust-region reflective,
+   bounds on the working scale, exact sensitivity Jacobian). Weights come from the error
+   model evaluated at the previous iterate (iteratively reweighted); censored values
+   contribute only when the prediction rises above the LLOQ. For additive error on one
+   observable without censoring this *is* the maximum-likelihood estimate (ordinary
+   least squares) and nothing more is done.
+2. **Joint polish** of the structural and error parameters on the exact −2 log-likelihood
+   (``scipy.optimize.minimize``, L-BFGS-B, analytic gradient), kept only if it improves
+   the objective.
+
+The best result over all starts is returned.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy.optimize import least_squares, minimize
+
+from ..errors import CompartmentsError
+from .likelihood import _sd, initial_eta, n_error_parameters, neg2ll
+from .problem import Problem
+from .stages import StageResult
+
+Array = NDArray[np.float64]
+
+
+def is_plain_least_squares(problem: Problem) -> bool:
+    """True when the likelihood fit reduces to ordinary least squares."""
+    return (
+        problem.error == "additive"
+        and len(problem.model.observable_names) == 1
+        and not bool(np.any(problem.censored))
+    )
+
+
+@dataclass
+class _Cache:
+    phi: Array | None = None
+    f: Array | None = None
+    J: Array | None = None
+
+
+class LikelihoodStage:
+    """Maximum-likelihood refinement on the exact solution.
+
+    Parameters
+    ----------
+    max_nfev : int
+        Function evaluations per least-squares solve.
+    reweight : int
+        Maximum reweighting rounds (error models other than plain additive).
+    """
+
+    name = "likelihood"
+
+    def __init__(self, *, max_nfev: int = 400, reweight: int = 8, tol: float = 1e-12):
+        self.max_nfev = max_nfev
+        self.reweight = reweight
+        self.tol = tol
+
+    def run(self, problem: Problem, starts: Sequence[Array]) -> StageResult:
+        t0 = time.perf_counter()
+        results = []
+        failures = []
+        for s in starts:
+            try:
+                results.append(self._from(problem, np.asarray(s, dtype=float)))
+            except (CompartmentsError, FloatingPointError, np.linalg.LinAlgError, ValueError) as exc:
+                failures.append(str(exc))
+        wall = time.perf_counter() - t0
+        if not results:
+            msg = failures[0] if failures else "no starting point"
+            return StageResult(self.name, np.asarray(starts[0], dtype=float) if starts else problem.default_phi,
+                               (), None, wall, 0, "failed", f"the likelihood fit failed from every start: {msg}")
+        results.sort(key=lambda r: r[1])
+        phi, obj, eta, nit, ok, msg = results[0]
+        cands = tuple(r[0] for r in results)
+        return StageResult(
+            name=self.name, phi=phi, candidates=cands, objective=obj, wall_time=wall,
+            iterations=int(sum(r[3] for r in results)), status="converged" if ok else "stopped",
+            message=msg, extra={"eta": eta, "n_starts": len(starts), "n_failed_starts": len(failures),
+                                "start_objectives": [float(r[1]) for r in results]},
+        )
+
+    # -- one start ---------------------------------------------------------------------
+    def _from(self, problem: Problem, phi0: Array) -> tuple[Array, float, Array, int, bool, str]:
+        lo, hi = problem.phi_bounds
+        span = hi - lo
+        phi = np.clip(phi0, lo + 1e-9 * span, hi - 1e-9 * span)
+        y = problem.values
+        cens = problem.censored
+        k = problem.obs_index
+        n_kinds = len(problem.model.observable_names)
+        err = problem.error
+        scale = max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+        floor = 1e-9 * scale
+        cache = _Cache()
+
+        def pred(p: Array) -> tuple[Array, Array]:
+            if cache.phi is None or not np.array_equal(cache.phi, p):
+                f, J = problem.predict(p, jacobian=True)
+                cache.phi, cache.f, cache.J = p.copy(), f, J
+            assert cache.f is not None and cache.J is not None
+            return cache.f, cache.J
+
+        # weights of the first round: per-observable scale (additive, combined), the data
+        # themselves (proportional), unit (log-normal works on the log scale)
+        sd = np.ones_like(y)
+        for j in range(n_kinds):
+            m = k == j
+            if np.any(m) and err in ("additive", "combined") and n_kinds > 1:
+                sd[m] = max(float(np.std(y[m])), floor) or 1.0
+        if err == "proportional":
+            sd = np.maximum(np.abs(y), floor)
+        log = err == "lognormal"
+        ly = np.log(np.maximum(y, floor)) if log else y
+
+        def resid(p: Array) -> Array:
+            f, _ = pred(p)
+            ft = np.log(np.maximum(f, floor)) if log else f
+            r = (ly - ft) / sd
+            if np.any(cens):
+                r = np.where(cens, np.maximum(ft - ly, 0.0) / sd, r)
+            return r
+
+        def jac(p: Array) -> Array:
+            f, J = pred(p)
+            Jt = J / np.maximum(f, floor)[:, None] if log else J
+            out = -Jt / sd[:, None]
+            if np.any(cens):
+                ft = np.log(np.maximum(f, floor)) if log else f
+                active = cens & (ft > ly)
+                out[cens] = np.where(active[cens, None], Jt[cens] / sd[cens, None], 0.0)
+            return out
+
+        nit = 0
+        ok = True
+        msg = ""
+        eta = np.zeros(n_kinds * n_error_parameters(err))
+        prev = np.inf
+        rounds = 1 if is_plain_least_squares(problem) else self.reweight
+        for _ in range(rounds):
+            sol = least_squares(resid, phi, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
+                                xtol=self.tol, ftol=self.tol, gtol=self.tol, max_nfev=self.max_nfev)
+            phi = sol.x
+            nit += int(sol.nfev)
+            ok = sol.status > 0
+            msg = sol.message
+            f, _ = pred(phi)
+            eta = initial_eta(err, y, f, k, cens, n_kinds, floor)
+            obj = neg2ll(err, y, f, eta, k, cens, floor).value
+            if rounds == 1 or abs(prev - obj) <= 1e-10 * (1 + abs(obj)):
+                break
+            prev = obj
+            sdv, _, _ = _sd(err, f, eta, k, floor)
+            sd = np.maximum(sdv, 1e-300)
+        f, _ = pred(phi)
+        obj = neg2ll(err, y, f, eta, k, cens, floor).value
+        if not is_plain_least_squares(problem):
+            phi, eta, obj, it2 = self._polish(problem, phi, eta, obj, pred, floor)
+            nit += it2
+        if not np.isfinite(obj):
+            raise FloatingPointError("the objective is not finite at the solution")
+        return phi, float(obj), eta, nit, ok, msg
+
+    def _polish(self, problem: Problem, phi: Array, eta: Array, obj: float, pred, floor: float
+                ) -> tuple[Array, Array, float, int]:
+        lo, hi = problem.phi_bounds
+        y, cens, k, err = problem.values, problem.censored, problem.obs_index, problem.error
+        nphi = phi.size
+        eb = [(e - 25.0, e + 25.0) for e in eta]
+
+        def fg(x: Array) -> tuple[float, Array]:
+            p, e = x[:nphi], x[nphi:]
+            try:
+                f, J = pred(p)
+            except CompartmentsError:
+                return 1e300, np.zeros_like(x)
+            t = neg2ll(err, y, f, e, k, cens, floor)
+            if not np.isfinite(t.value):
+                return 1e300, np.zeros_like(x)
+            return t.value, np.concatenate([J.T @ t.d_f, t.d_eta])
+
+        x0 = np.concatenate([phi, eta])
+        bounds = list(zip(lo, hi)) + eb
+        res = minimize(fg, x0, jac=True, method="L-BFGS-B", bounds=bounds,
+                       options={"maxiter": 500, "ftol": 1e-15, "gtol": 1e-10})
+        if np.isfinite(res.fun) and res.fun < obj:
+            return res.x[:nphi], res.x[nphi:], float(res.fun), int(res.nit)
+        return phi, eta, obj, int(res.nit)

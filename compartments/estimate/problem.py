@@ -1,0 +1,218 @@
+"""The estimation problem shared by every stage: model, data, free parameters, scales.
+
+A :class:`Problem` fixes which template parameters are estimated (the *free* ones: every
+parameter not marked ``fixed`` unless asked otherwise), their bounds, and their working
+scale ``φ`` (``log θ`` for log-scaled parameters, ``θ`` otherwise). It flattens one or
+more subjects' observations so that a stage can ask for predictions and their exact
+Jacobian ``∂f/∂φ`` at any ``φ``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..dosing import Dose
+from ..errors import FitError, UsageError
+from ..model import Model
+from ..simulate import simulate
+
+Array = NDArray[np.float64]
+
+ERROR_MODELS = ("additive", "proportional", "combined", "lognormal")
+
+
+@dataclass(frozen=True)
+class SubjectData:
+    """One subject's observations, ready for estimation (times in the model's unit)."""
+
+    id: str
+    times: Array
+    values: Array
+    obs_index: NDArray[np.int64]  # which model observable each row is
+    censored: NDArray[np.bool_]
+    lloq: Array
+    doses: tuple[Dose, ...]
+
+    @property
+    def n(self) -> int:
+        return int(self.times.size)
+
+
+def subject_data(subject: Any, model: Model) -> SubjectData:
+    """Convert a :class:`compartments.study.Subject` (duck-typed) for ``model``."""
+    names = model.observable_names
+    idx = []
+    for row, o in zip(getattr(subject, "rows", range(len(subject.times))), subject.observables):
+        if o is None:
+            if len(names) != 1 and o is None:
+                raise UsageError(
+                    f"subject {subject.id}: template {model.template.name!r} has several observables "
+                    f"({', '.join(names)}); the data must say which one each value is (an 'observable' column)"
+                )
+            idx.append(0)
+        elif o in names:
+            idx.append(names.index(o))
+        else:
+            raise UsageError(
+                f"subject {subject.id}, row {row}: observable {o!r} is not in template "
+                f"{model.template.name!r}; it has {', '.join(names)}"
+            )
+    lloq = np.asarray(getattr(subject, "lloq", np.full(len(subject.times), np.nan)), dtype=float)
+    return SubjectData(
+        id=str(subject.id),
+        times=np.asarray(subject.times, dtype=float),
+        values=np.asarray(subject.values, dtype=float),
+        obs_index=np.asarray(idx, dtype=np.int64),
+        censored=np.asarray(subject.censored, dtype=bool),
+        lloq=lloq,
+        doses=tuple(subject.doses),
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class Problem:
+    """What to estimate, from which data.
+
+    Attributes
+    ----------
+    model : Model
+    data : tuple of SubjectData
+        One subject, or several sharing one parameter set (pooled).
+    free : tuple of int
+        Indices (into the template's parameters) of the estimated parameters.
+    base : (p,) array
+        Full parameter vector; free entries are overwritten by the stage's values.
+    error : str
+        Error model name (see :data:`ERROR_MODELS`).
+    """
+
+    model: Model
+    data: tuple[SubjectData, ...]
+    free: tuple[int, ...]
+    base: Array
+    error: str = "additive"
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return tuple(self.model.parameter_names[i] for i in self.free)
+
+    @property
+    def n_free(self) -> int:
+        return len(self.free)
+
+    @property
+    def n_obs(self) -> int:
+        return int(sum(d.n for d in self.data))
+
+    @property
+    def log_mask(self) -> NDArray[np.bool_]:
+        ps = self.model.template.parameters
+        return np.array([ps[i].log for i in self.free], dtype=bool)
+
+    @property
+    def lower(self) -> Array:
+        ps = self.model.template.parameters
+        return np.array([ps[i].lower for i in self.free], dtype=float)
+
+    @property
+    def upper(self) -> Array:
+        ps = self.model.template.parameters
+        return np.array([ps[i].upper for i in self.free], dtype=float)
+
+    @property
+    def phi_bounds(self) -> tuple[Array, Array]:
+        """Bounds on the working scale."""
+        lo, hi, lg = self.lower, self.upper, self.log_mask
+        return np.where(lg, np.log(np.maximum(lo, 1e-300)), lo), np.where(lg, np.log(hi), hi)
+
+    def to_phi(self, theta_free: Array) -> Array:
+        t = np.asarray(theta_free, dtype=float)
+        return np.where(self.log_mask, np.log(np.maximum(t, 1e-300)), t)
+
+    def to_theta_free(self, phi: Array) -> Array:
+        p = np.asarray(phi, dtype=float)
+        return np.where(self.log_mask, np.exp(p), p)
+
+    def full_theta(self, phi: Array) -> Array:
+        theta = self.base.copy()
+        theta[list(self.free)] = self.to_theta_free(phi)
+        return theta
+
+    @property
+    def default_phi(self) -> Array:
+        return self.to_phi(self.base[list(self.free)])
+
+    @property
+    def values(self) -> Array:
+        return np.concatenate([d.values for d in self.data]) if self.data else np.zeros(0)
+
+    @property
+    def censored(self) -> NDArray[np.bool_]:
+        return np.concatenate([d.censored for d in self.data]) if self.data else np.zeros(0, bool)
+
+    @property
+    def obs_index(self) -> NDArray[np.int64]:
+        return np.concatenate([d.obs_index for d in self.data]) if self.data else np.zeros(0, np.int64)
+
+    def predict(self, phi: Array, jacobian: bool = False) -> tuple[Array, Array | None]:
+        """Predictions for every observation (concatenated over subjects) and ∂f/∂φ."""
+        theta = self.full_theta(phi)
+        fs, Js = [], []
+        free = list(self.free)
+        dtheta_dphi = np.where(self.log_mask, theta[free], 1.0)
+        for d in self.data:
+            r = simulate(self.model, theta, d.doses, d.times, sensitivities=jacobian)
+            rows = np.arange(d.n)
+            fs.append(r.observables[rows, d.obs_index])
+            if jacobian:
+                assert r.observable_sensitivities is not None
+                J = r.observable_sensitivities[rows, d.obs_index][:, free] * dtheta_dphi
+                Js.append(J)
+        f = np.concatenate(fs) if fs else np.zeros(0)
+        J = np.concatenate(Js) if jacobian and Js else (np.zeros((0, self.n_free)) if jacobian else None)
+        return f, J
+
+
+def make_problem(
+    model: Model,
+    subjects: Sequence[Any],
+    *,
+    error: str = "additive",
+    fixed: Mapping[str, float] | None = None,
+    estimate: Sequence[str] = (),
+) -> Problem:
+    """Build a :class:`Problem`.
+
+    Parameters
+    ----------
+    model : Model
+    subjects : sequence of Subject
+    error : {"additive", "proportional", "combined", "lognormal"}
+    fixed : mapping, optional
+        Parameters held at the given values (not estimated).
+    estimate : sequence of str
+        Parameters the template marks ``fixed`` that should be estimated after all
+        (e.g. ``"tlag"``).
+    """
+    if error not in ERROR_MODELS:
+        raise UsageError(f"error model must be one of {', '.join(ERROR_MODELS)}, got {error!r}")
+    fixed = dict(fixed or {})
+    names = model.parameter_names
+    for k in list(fixed) + list(estimate):
+        if k not in names:
+            raise UsageError(f"parameter {k!r} is not in template {model.template.name!r}; it has {', '.join(names)}")
+    base = model.param_vector(fixed)
+    free = tuple(
+        i
+        for i, p in enumerate(model.template.parameters)
+        if p.name not in fixed and (not p.fixed or p.name in estimate)
+    )
+    data = tuple(subject_data(s, model) for s in subjects)
+    if not free:
+        raise FitError("nothing to estimate: every parameter is fixed")
+    return Problem(model=model, data=data, free=free, base=base, error=error)

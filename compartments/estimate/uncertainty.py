@@ -1,0 +1,213 @@
+"""Uncertainty of the estimates: covariance, SE, %RSE, CI, correlation; profiles; bootstrap.
+
+Covariance
+    For additive error on one observable without censoring, as in standard nonlinear
+    regression: ``s² (JᵀJ)⁻¹`` with ``s² = SSR/(n − p)`` (e.g. Bates & Watts, Nonlinear
+    Regression Analysis and Its Applications, 1988, §2.3). Otherwise the inverse of the
+    observed Fisher information: the Hessian of −log L over structural and error
+    parameters, by central differences of the analytic gradient.
+Intervals
+    95 % Wald intervals on the working scale (log scale for log-fitted parameters, then
+    back-transformed) with Student-t quantiles on ``n − k`` degrees of freedom (k counts
+    error parameters too), which reduces to the normal quantile for large n.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy import stats
+from scipy.optimize import brentq
+
+from .likelihood import neg2ll
+from .nls import is_plain_least_squares
+from .problem import Problem
+
+Array = NDArray[np.float64]
+
+SINGULAR_RCOND = 1e-10
+
+
+@dataclass(frozen=True)
+class Uncertainty:
+    """Covariance on the working scale and summaries on the natural scale."""
+
+    cov_phi: Array  # (k, k) structural parameters, working scale
+    se: Array  # (k,) natural scale (delta method)
+    se_phi: Array
+    ci: Array  # (k, 2) natural scale
+    correlation: Array
+    df: int
+    quantile: float
+    method: str
+    singular: tuple[int, ...] = ()  # indices of parameters the information cannot fix
+    cov_error: Array = field(default_factory=lambda: np.zeros((0, 0)))
+
+
+def _information_singular(info: Array) -> tuple[bool, tuple[int, ...]]:
+    d = np.sqrt(np.abs(np.diag(info)))
+    if np.any(~np.isfinite(info)):
+        return True, tuple(range(info.shape[0]))
+    if np.any(d == 0):
+        return True, tuple(int(i) for i in np.flatnonzero(d == 0))
+    scaled = info / np.outer(d, d)
+    w, v = np.linalg.eigh(scaled)
+    if w[0] > SINGULAR_RCOND * max(w[-1], 1e-300):
+        return False, ()
+    bad = set()
+    for j in np.flatnonzero(w <= SINGULAR_RCOND * max(w[-1], 1e-300)):
+        vec = np.abs(v[:, j])
+        bad.update(int(i) for i in np.flatnonzero(vec > 0.3 * vec.max()))
+    return True, tuple(sorted(bad))
+
+
+def hessian(fun: Callable[[Array], Array], x: Array, rel: float = 1e-5) -> Array:
+    """Symmetric Hessian by central differences of an analytic gradient ``fun``."""
+    n = x.size
+    H = np.zeros((n, n))
+    for i in range(n):
+        h = rel * max(1.0, abs(x[i]))
+        xp, xm = x.copy(), x.copy()
+        xp[i] += h
+        xm[i] -= h
+        H[:, i] = (fun(xp) - fun(xm)) / (2 * h)
+    return 0.5 * (H + H.T)
+
+
+def estimate_uncertainty(problem: Problem, phi: Array, eta: Array, level: float = 0.95) -> Uncertainty:
+    """Covariance and intervals at the estimate ``phi`` (working scale)."""
+    k = phi.size
+    n = problem.n_obs
+    y, cens, idx, err = problem.values, problem.censored, problem.obs_index, problem.error
+    scale = max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+    floor = 1e-9 * scale
+    f, J = problem.predict(phi, jacobian=True)
+    assert J is not None
+    n_err = eta.size
+    df = max(n - k - (0 if is_plain_least_squares(problem) else n_err), 0)
+    cov_err = np.zeros((0, 0))
+    if is_plain_least_squares(problem):
+        method = "s²(JᵀJ)⁻¹, s² = SSR/(n − p)"
+        info = J.T @ J
+        singular, bad = _information_singular(info)
+        ssr = float(np.sum((y - f) ** 2))
+        s2 = ssr / (n - k) if n > k else np.nan
+        cov = s2 * np.linalg.pinv(info) if not singular else np.full((k, k), np.nan)
+        df = max(n - k, 0)
+    else:
+        method = "inverse observed Fisher information"
+
+        def grad(x: Array) -> Array:
+            p, e = x[:k], x[k:]
+            ff, JJ = problem.predict(p, jacobian=True)
+            t = neg2ll(err, y, ff, e, idx, cens, floor)
+            return 0.5 * np.concatenate([JJ.T @ t.d_f, t.d_eta])
+
+        x = np.concatenate([phi, eta])
+        H = hessian(grad, x)
+        singular, bad = _information_singular(H)
+        bad = tuple(i for i in bad if i < k)
+        if singular and not bad:
+            singular = False  # only error parameters are poorly determined
+        if singular:
+            cov = np.full((k, k), np.nan)
+        else:
+            full = np.linalg.inv(H)
+            cov = full[:k, :k]
+            cov_err = full[k:, k:]
+            if np.any(np.diag(cov) < 0):
+                singular, bad = True, tuple(int(i) for i in np.flatnonzero(np.diag(cov) < 0))
+                cov = np.full((k, k), np.nan)
+    se_phi = np.sqrt(np.clip(np.diag(cov), 0, None)) if not singular else np.full(k, np.nan)
+    q = float(stats.t.ppf(0.5 + level / 2, df)) if df >= 1 else float("nan")
+    theta = problem.to_theta_free(phi)
+    logm = problem.log_mask
+    se = np.where(logm, theta * se_phi, se_phi)
+    lo = np.where(logm, np.exp(phi - q * se_phi), phi - q * se_phi)
+    hi = np.where(logm, np.exp(phi + q * se_phi), phi + q * se_phi)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        corr = cov / np.outer(se_phi, se_phi)
+    return Uncertainty(cov_phi=cov, se=se, se_phi=se_phi, ci=np.column_stack([lo, hi]),
+                       correlation=corr, df=df, quantile=q, method=method,
+                       singular=tuple(bad) if singular else (), cov_error=cov_err)
+
+
+# -- profile likelihood -------------------------------------------------------------------
+@dataclass(frozen=True)
+class Profile:
+    """Profile of −2LL over one parameter (natural scale)."""
+
+    name: str
+    values: Array
+    objective: Array  # −2LL minimised over the other parameters
+    ci: tuple[float, float]  # where −2LL rises by the χ²₁ quantile (nan when not reached)
+    threshold: float
+
+
+def profile_parameter(problem: Problem, phi: Array, best: float, j: int, se_phi: float,
+                      refit: Callable[[Problem, Array], tuple[Array, float]], level: float = 0.95,
+                      max_steps: int = 10) -> Profile:
+    """Profile parameter ``j`` of ``problem`` around the estimate ``phi``.
+
+    ``refit(sub_problem, start) -> (phi_sub, objective)`` re-optimises the others.
+    """
+    from dataclasses import replace
+
+    thr = float(stats.chi2.ppf(level, 1))
+    lo_b, hi_b = problem.phi_bounds
+    others = [i for i in range(phi.size) if i != j]
+    step0 = se_phi if np.isfinite(se_phi) and se_phi > 0 else 0.1
+    step0 = min(step0, 0.5 * (hi_b[j] - lo_b[j]))
+    pts: dict[float, float] = {float(phi[j]): best}
+    starts: dict[float, Array] = {float(phi[j]): phi[others]}
+
+    def value(v: float, start: Array) -> tuple[float, Array]:
+        base = problem.base.copy()
+        pj = problem.free[j]
+        base[pj] = float(np.exp(v)) if problem.log_mask[j] else v
+        sub = replace(problem, free=tuple(problem.free[i] for i in others), base=base)
+        p, obj = refit(sub, start)
+        return obj, p
+
+    limits = []
+    for direction in (-1.0, 1.0):
+        v = float(phi[j])
+        start = phi[others]
+        step = step0
+        prev_v, prev_o = v, best
+        found = float("nan")
+        for _ in range(max_steps):
+            v_new = v + direction * step
+            bound = lo_b[j] if direction < 0 else hi_b[j]
+            if (direction < 0 and v_new <= bound) or (direction > 0 and v_new >= bound):
+                v_new = float(bound)
+            obj, start = value(v_new, start)
+            pts[v_new] = obj
+            starts[v_new] = start
+            if obj - best >= thr:
+                def g(u: float, s=start) -> float:
+                    return value(u, s)[0] - best - thr
+                try:
+                    found = brentq(g, prev_v, v_new, xtol=1e-4 * max(1.0, abs(v_new)), maxiter=30) \
+                        if (g(prev_v) < 0) else v_new
+                except ValueError:
+                    found = v_new
+                break
+            if v_new == float(bound):
+                break
+            prev_v, prev_o = v_new, obj
+            v = v_new
+            step *= 1.6
+        limits.append(found)
+    vs = np.array(sorted(pts))
+    objs = np.array([pts[v] for v in vs])
+    if problem.log_mask[j]:
+        nat = np.exp(vs)
+        ci = tuple(float(np.exp(x)) if np.isfinite(x) else float("nan") for x in limits)
+    else:
+        nat = vs
+        ci = tuple(float(x) for x in limits)
+    return Profile(problem.names[j], nat, objs, (ci[0], ci[1]), thr)

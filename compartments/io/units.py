@@ -1,0 +1,237 @@
+"""Units: time-unit conversion, declared units, and a plain consistency check.
+
+Times are stored in the unit of the study's time axis (hours unless ``time_axis`` says
+otherwise). The unit of the file's times comes from ``time_unit=``, ``units={"time": ...}``
+or the time column's header (``time [min]``); when none says, hours are assumed and a
+note says so.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Mapping
+from typing import TYPE_CHECKING
+
+from ..errors import DataError, UsageError
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..study import Study
+    from ..template import Template
+
+HOURS = {"h": 1.0, "min": 1.0 / 60.0, "s": 1.0 / 3600.0, "day": 24.0, "week": 168.0}
+_TIME_WORDS = {
+    "h": "h", "hr": "h", "hrs": "h", "hour": "h", "hours": "h",
+    "min": "min", "mins": "min", "minute": "min", "minutes": "min",
+    "s": "s", "sec": "s", "secs": "s", "second": "s", "seconds": "s",
+    "d": "day", "day": "day", "days": "day",
+    "wk": "week", "week": "week", "weeks": "week",
+}
+
+
+def time_unit_name(text: str) -> str | None:
+    """Canonical name of a time unit (``"hours"`` -> ``"h"``), None if unknown.
+
+    Examples
+    --------
+    >>> time_unit_name("Hours"), time_unit_name("min"), time_unit_name("fortnight")
+    ('h', 'min', None)
+    """
+    return _TIME_WORDS.get(text.strip().lower())
+
+
+def time_factor(source: str, target: str) -> float:
+    """Multiply a time in ``source`` units by this to get ``target`` units.
+
+    Examples
+    --------
+    >>> time_factor("min", "h") * 90
+    1.5
+    >>> time_factor("day", "h")
+    24.0
+    """
+    return HOURS[source] / HOURS[target]
+
+
+def require_time_unit(text: str, what: str) -> str:
+    """Canonical time unit or :class:`UsageError` naming the accepted ones."""
+    name = time_unit_name(text)
+    if name is None:
+        raise UsageError(f"{what}={text!r} is not a time unit; use one of {', '.join(HOURS)}")
+    return name
+
+
+def same_unit(a: str, b: str) -> bool:
+    """Compare two unit texts leniently (case of the prefix letters, µ/mc/u, spaces)."""
+    return _norm(a) == _norm(b)
+
+
+def _norm(u: str) -> str:
+    u = u.strip().replace(" ", "").replace("µ", "u").replace("μ", "u")
+    u = re.sub(r"mc(?=g)", "u", u)
+    return u.lower()
+
+
+def declared_units(
+    names: tuple[str, ...],
+    header_units: tuple[str, ...],
+    roles: Mapping[str, int],
+    header: tuple[str, ...],
+    units: Mapping[str, str] | None,
+    time_unit: str | None,
+    path: str | None,
+) -> tuple[dict[str, str], str, bool]:
+    """Merge units from the header, ``units=`` and ``time_unit=``.
+
+    Returns
+    -------
+    units : dict
+        Role (``time``, ``value``, ``dose``, ``lloq``, ``rate``, ``duration``) or covariate
+        name -> unit text; ``""`` for an unknown role unit.
+    source_time_unit : str
+        Canonical unit of the file's numeric times.
+    assumed : bool
+        True when no unit was stated and hours were assumed.
+
+    Raises
+    ------
+    DataError
+        A header unit contradicting ``units=``/``time_unit=``, or an unknown time unit.
+    """
+    out: dict[str, str] = {role: "" for role in ("time", "value", "dose")}
+    where: dict[str, int] = {}
+    for role, j in roles.items():
+        if header_units[j]:
+            out[role] = header_units[j]
+            where[role] = j
+    role_of = {j: role for role, j in roles.items()}
+    for j, name in enumerate(names):
+        if j not in role_of and header_units[j]:
+            out[name] = header_units[j]
+            where[name] = j
+    given = dict(units or {})
+    if time_unit is not None:
+        if "time" in given and time_unit_name(given["time"]) != time_unit_name(time_unit):
+            raise UsageError(f"time_unit={time_unit!r} and units={{'time': {given['time']!r}}} disagree; give one")
+        given["time"] = time_unit
+    for key, unit in given.items():
+        if not isinstance(unit, str):
+            raise UsageError(f"units[{key!r}] must be text like 'mg/L', got {unit!r}")
+        old = out.get(key, "")
+        if old and not same_unit(old, unit) and not (key == "time" and time_unit_name(old) == time_unit_name(unit)):
+            j = where[key]
+            raise DataError(
+                f"the header gives the unit '{old}' but units= says '{unit}'; correct the header or drop "
+                "the unit from units=",
+                path,
+                1,
+                header[j],
+            )
+        out[key] = unit
+    assumed = not out["time"]
+    if assumed:
+        out["time"] = "h"
+    canonical = time_unit_name(out["time"])
+    if canonical is None:
+        col = header[roles["time"]] if "time" in where else None
+        raise DataError(
+            f"'{out['time']}' is not a time unit I know; use one of {', '.join(HOURS)} "
+            "(or hours, minutes, days, weeks)",
+            path,
+            1 if col else None,
+            col,
+        )
+    return out, canonical, assumed
+
+
+# ---------------------------------------------------------------- consistency check
+
+_MASS = {"g": 1.0, "mg": 1e-3, "ug": 1e-6, "ng": 1e-9, "pg": 1e-12}
+_MOLES = {"mol": 1.0, "mmol": 1e-3, "umol": 1e-6, "nmol": 1e-9, "pmol": 1e-12}
+_VOLUME = {"l": 1.0, "dl": 0.1, "ml": 1e-3, "ul": 1e-6}
+
+
+def _amount(u: str) -> tuple[str, float] | None:
+    """('mass'|'moles', factor to g or mol) for an amount unit."""
+    n = _norm(u)
+    if n in _MASS:
+        return "mass", _MASS[n]
+    if n in _MOLES:
+        return "moles", _MOLES[n]
+    return None
+
+
+def _concentration(u: str) -> tuple[str, float, float] | None:
+    """(kind, amount factor, volume in L) for ``amount/volume`` units such as mg/L."""
+    parts = _norm(u).split("/")
+    if len(parts) != 2 or parts[1] not in _VOLUME:
+        return None
+    amount = _amount(parts[0])
+    if amount is None:
+        return None
+    return amount[0], amount[1], _VOLUME[parts[1]]
+
+
+def _volume_name(litres: float) -> str:
+    for name, size in (("L", 1.0), ("mL", 1e-3), ("kL (1000 L)", 1e3), ("dL", 0.1), ("uL", 1e-6)):
+        if abs(litres / size - 1.0) < 1e-9:
+            return name
+    return f"{litres:g} L"
+
+
+def check_units(study: Study, template: Template) -> list[str]:
+    """Sentences about whether the study's units suit the template.
+
+    Checks the time axis against the template's time unit, the value unit against the
+    first observable's unit, and what unit a volume estimated from the dose and value
+    units comes out in (dose mg with values mg/L gives volumes in L; a dose per kg
+    gives volumes in L/kg and clearances in L/h/kg).
+
+    Examples
+    --------
+    The dose and concentration units of the Theoph data (mg/kg and mg/L) give
+    volumes per kilogram::
+
+        check_units(study, template)  # [..., 'doses are per kg: volumes come out in L/kg, clearances in L/h/kg']
+    """
+    out: list[str] = []
+    axis = study.time_unit
+    if time_unit_name(template.time_unit) != time_unit_name(axis):
+        out.append(
+            f"the study's times are in {axis} but template '{template.name}' uses {template.time_unit}; "
+            f"convert with study.in_time_unit('{template.time_unit}') or read with time_axis='{template.time_unit}'"
+        )
+    value_u = study.units.get("value", "")
+    dose_u = study.units.get("dose", "")
+    if not value_u:
+        out.append("the unit of the values is not stated; pass units={'value': 'mg/L'} (or the right unit) to check it")
+    elif template.observables:
+        obs = template.observables[0]
+        if obs.unit and not same_unit(obs.unit, value_u):
+            out.append(
+                f"values are in {value_u} but the template's observable '{obs.name}' is in {obs.unit}; "
+                "the estimates take the data's units"
+            )
+    if not dose_u:
+        if any(s.doses for s in study.subjects):
+            out.append("the unit of the doses is not stated; pass units={'dose': 'mg'} (or the right unit) to check it")
+        return out
+    per_kg = re.search(r"/\s*kg$", dose_u.strip(), re.IGNORECASE) is not None
+    dose_amount = _amount(re.sub(r"/\s*kg$", "", dose_u.strip(), flags=re.IGNORECASE))
+    conc = _concentration(value_u) if value_u else None
+    if dose_amount is None or conc is None:
+        if value_u:
+            out.append(f"the units {dose_u} (dose) and {value_u} (values) are not both amount and amount/volume; volumes are in {dose_u} per ({value_u})")
+        return out
+    if dose_amount[0] != conc[0]:
+        out.append(f"the dose is in {dose_u} but the values in {value_u} (mass against moles); convert one with the molar mass")
+        return out
+    litres = dose_amount[1] / conc[1] * conc[2]
+    vol = _volume_name(litres)
+    time_u = study.time_unit
+    if per_kg:
+        out.append(f"doses are per kg: volumes come out in {vol}/kg, clearances in {vol}/{time_u}/kg")
+    else:
+        out.append(f"dose in {dose_u} and values in {value_u}: volumes come out in {vol}, clearances in {vol}/{time_u}")
+    if litres != 1.0:
+        out.append(f"the dose and value units differ in scale; convert one of them if you want volumes in L")
+    return out

@@ -1,0 +1,1 @@
+"""Presentation: rich tables, plots, JSON/CSV/Markdown exports."""

@@ -1,0 +1,1 @@
+"""Shipped model templates (TOML files); see compartments.library."""
