@@ -13,6 +13,9 @@ from dataclasses import dataclass
 from .errors import UsageError
 
 ROUTES = ("iv", "oral", "infusion")
+#: A dose whose route the data do not state: it enters the model's only bolus-type input
+#: (``oral`` for an oral template, ``iv`` for an intravenous one); ambiguous otherwise.
+AUTO = "auto"
 
 
 @dataclass(frozen=True)
@@ -25,7 +28,9 @@ class Dose:
         Time of the dose (start of an infusion).
     amount : float, dose unit
         Amount given (for an infusion, the total amount).
-    route : {"iv", "oral", "infusion"}
+    route : {"iv", "oral", "infusion", "auto"}
+        ``"auto"``: the data do not say; the dose enters the model's only bolus-type
+        input (see :func:`resolve_route`).
     duration : float, h, optional
         Infusion duration. Give ``duration`` or ``rate`` for an infusion.
     rate : float, dose unit/h, optional
@@ -44,7 +49,7 @@ class Dose:
     rate: float | None = None
 
     def __post_init__(self) -> None:
-        if self.route not in ROUTES:
+        if self.route not in ROUTES and self.route != AUTO:
             raise UsageError(
                 f"unknown route {self.route!r}; use one of {', '.join(ROUTES)}"
             )
@@ -116,3 +121,30 @@ def regimen(
     return [
         Dose(start + i * every, amount, route, duration=duration) for i in range(int(count))
     ]
+
+
+def resolve_route(route: str, accepted: tuple[str, ...], model_name: str) -> str:
+    """The route a dose takes in a model that accepts ``accepted`` routes.
+
+    ``"auto"`` resolves to the single non-infusion route of the model; an infusion may
+    enter through the ``iv`` input when the model has no separate infusion input.
+
+    >>> resolve_route("auto", ("oral",), "one-comp-oral")
+    'oral'
+    """
+    if route == AUTO:
+        bolus = [r for r in accepted if r != "infusion"]
+        if len(bolus) == 1:
+            return bolus[0]
+        raise UsageError(
+            f"the data do not say how the dose was given and template {model_name!r} accepts "
+            f"{', '.join(accepted) or 'no doses'}; give the route (command line: --route)"
+        )
+    if route in accepted:
+        return route
+    if route == "infusion" and "iv" in accepted:
+        return "iv"
+    raise UsageError(
+        f"template {model_name!r} has no {route!r} dose input; it accepts: "
+        f"{', '.join(accepted) or 'none (this model takes no doses)'}"
+    )

@@ -19,8 +19,14 @@ The text is split by a hand-written tokenizer and read by a recursive-descent pa
 builds sympy objects directly; Python's ``eval``, ``exec``, ``ast`` and sympy's string
 parsers are never used. Resource limits keep every call bounded in time and memory:
 at most :data:`MAX_LENGTH` characters, :data:`MAX_DEPTH` levels of nesting (checked while
-parsing, so no ``RecursionError``), constant exponents of magnitude at most
-:data:`MAX_EXPONENT`, and constant numbers of magnitude at most :data:`MAX_MAGNITUDE`.
+parsing, so no ``RecursionError``), at most 20 arguments per call, constant exponents
+of magnitude at most :data:`MAX_EXPONENT`, and constants of magnitude at most
+:data:`MAX_MAGNITUDE`. Every constant sub-expression is also evaluated with Python floats
+as it is read, so ``exp(1000)``, ``log(0)``, ``sqrt(-1)`` or ``1/0`` are refused before
+sympy works on them. ``abs``, ``min``, ``max``, comparisons and ``piecewise`` are built
+unevaluated (sympy's own evaluation of them can take unbounded time), and a ``piecewise``
+may not appear inside a condition. Arithmetic, ``exp``, ``log`` and ``sqrt`` are evaluated
+as sympy usually does (``2*(x + 1)`` becomes ``2*x + 2``).
 """
 
 from __future__ import annotations
@@ -56,26 +62,58 @@ MAX_EXPONENT = 1000
 MAX_MAGNITUDE = 1e300
 #: Largest accepted size, in bits, of the numerator or denominator of an exact constant.
 _MAX_BITS = 1100
-_MAX_ARGUMENTS = 100
+_MAX_ARGUMENTS = 20
 
-_FUNCTIONS_1: dict[str, Callable[[sp.Expr], sp.Expr]] = {
-    "exp": sp.exp,
-    "log": sp.log,
-    "sqrt": sp.sqrt,
-    "abs": sp.Abs,
+
+def _float_log(value: float) -> float:
+    if value <= 0:
+        raise ValueError("log of a non-positive number")
+    return math.log(value)
+
+
+def _float_pow(base: float, exponent: float) -> float:
+    if base == 0 and exponent < 0:
+        raise ZeroDivisionError("0 to a negative power")
+    return math.pow(base, exponent)
+
+
+# name -> (sympy constructor, float function for constant arguments)
+_FUNCTIONS_1: dict[str, tuple[Callable[..., sp.Basic], Callable[..., float]]] = {
+    "exp": (sp.exp, math.exp),
+    "log": (sp.log, _float_log),
+    "sqrt": (sp.sqrt, math.sqrt),
+    # Abs is built unevaluated: its evaluation may expand products (unbounded time).
+    "abs": (lambda a: sp.Abs(a, evaluate=False), abs),
 }
-_FUNCTIONS_N: dict[str, Callable[..., sp.Expr]] = {"min": sp.Min, "max": sp.Max}
+# Min/Max are built unevaluated: sympy's pairwise simplification of their arguments
+# grows quadratically with costly assumption queries (tens of seconds for ~200 arguments).
+_FUNCTIONS_N: dict[str, tuple[Callable[..., sp.Basic], Callable[..., float]]] = {
+    "min": (lambda *a: sp.Min(*a, evaluate=False), min),
+    "max": (lambda *a: sp.Max(*a, evaluate=False), max),
+}
 #: Function names the grammar knows.
 FUNCTIONS: tuple[str, ...] = ("exp", "log", "sqrt", "abs", "min", "max", "piecewise")
 #: Names a template may not declare: the functions and ``t`` (time, kept for later use).
 RESERVED_NAMES: frozenset[str] = frozenset(FUNCTIONS) | {"t"}
 
-_COMPARISONS: dict[str, Callable[[sp.Expr, sp.Expr], sp.Basic]] = {
-    "<": sp.Lt,
-    "<=": sp.Le,
-    ">": sp.Gt,
-    ">=": sp.Ge,
+# Comparisons and piecewise are built unevaluated: evaluating them may run sympy's
+# assumption system and logic simplifier on the whole operands (unbounded time).
+_COMPARISONS: dict[str, tuple[Callable[..., sp.Basic], Callable[..., bool]]] = {
+    "<": (lambda a, b: sp.Lt(a, b, evaluate=False), lambda a, b: a < b),
+    "<=": (lambda a, b: sp.Le(a, b, evaluate=False), lambda a, b: a <= b),
+    ">": (lambda a, b: sp.Gt(a, b, evaluate=False), lambda a, b: a > b),
+    ">=": (lambda a, b: sp.Ge(a, b, evaluate=False), lambda a, b: a >= b),
 }
+
+
+def _piecewise(cond: sp.Basic, then: sp.Expr, otherwise: sp.Expr) -> sp.Expr:
+    return sp.Piecewise((then, cond), (otherwise, True), evaluate=False)
+
+
+def _piecewise_value(cond: bool, then: float, otherwise: float) -> float:
+    return then if cond else otherwise
+
+
 _ALLOWED = (
     "allowed: numbers, declared names, + - * / ** ^, parentheses, "
     "exp log sqrt abs min max piecewise(cond, then, otherwise)"
@@ -111,6 +149,17 @@ class _Token:
     kind: str  # "number", "name", "op", "end"
     text: str
     column: int  # 1-based
+
+
+@dataclass(frozen=True)
+class _Node:
+    """A parsed sub-expression and, when it is constant, its value as a Python float."""
+
+    expr: sp.Basic
+    value: float | bool | None = None
+
+
+_MINUS_ONE = _Node(sp.S.NegativeOne, -1.0)
 
 
 def parse_expression(
@@ -199,7 +248,9 @@ class _Parser:
             text = text[:57] + "..."
         return repr(text)
 
-    def error(self, what: str, token: _Token | None = None, allowed: str = _ALLOWED) -> ExpressionError:
+    def error(
+        self, what: str, token: _Token | None = None, allowed: str = _ALLOWED
+    ) -> ExpressionError:
         place = ""
         if token is not None:
             place = " at the end" if token.kind == "end" else f" at column {token.column}"
@@ -222,7 +273,7 @@ class _Parser:
                 if end < n and (text[end].isalnum() or text[end] in "_."):
                     bad = _Token("number", text[i : end + 1], col)
                     raise self.error(
-                        f"malformed number {text[i:end + 1]!r} (write 2*x, not 2x)", bad
+                        f"malformed number {text[i : end + 1]!r} (write 2*x, not 2x)", bad
                     )
                 tokens.append(_Token("number", text[i:end], col))
                 i = end
@@ -232,7 +283,9 @@ class _Parser:
                 end = m.end() if m else i + 1
                 token = _Token("name", text[i:end], col)
                 if token.text.startswith("__"):
-                    raise self.error(f"names starting with '__' are not allowed ({token.text!r})", token)
+                    raise self.error(
+                        f"names starting with '__' are not allowed ({token.text!r})", token
+                    )
                 if keyword.iskeyword(token.text):
                     raise self.error(f"Python keyword {token.text!r} is not allowed", token)
                 tokens.append(token)
@@ -295,14 +348,60 @@ class _Parser:
             raise self.unexpected(self.peek, expected)
         return self.advance()
 
-    def build(self, fn: Callable[..., sp.Basic], args: tuple, tok: _Token) -> sp.Basic:
-        """Call a sympy constructor and check the numbers that come out."""
+    def constant(self, value: float | None, tok: _Token) -> float | None:
+        """Check the float value of a constant sub-expression (None: not constant)."""
+        if value is not None and not (math.isfinite(value) and abs(value) <= MAX_MAGNITUDE):
+            raise self.error(
+                f"a constant is out of range (larger than {MAX_MAGNITUDE:g} in magnitude)",
+                tok,
+                allowed="",
+            )
+        return value
+
+    def evaluate(self, fn: Callable[..., float], values: list, tok: _Token) -> float | None:
+        """Float value of a constant node, computed with Python floats before sympy works."""
+        if any(v is None for v in values):
+            return None
         try:
-            result = fn(*args)
-        except (TypeError, ValueError, ArithmeticError, AttributeError) as exc:
+            value = fn(*values)
+        except OverflowError:
+            raise self.error(
+                f"a constant is out of range (larger than {MAX_MAGNITUDE:g} in magnitude)",
+                tok,
+                allowed="",
+            ) from None
+        except ZeroDivisionError:
+            raise self.error(
+                "the expression is undefined (division by zero)", tok, allowed=""
+            ) from None
+        except ValueError:
+            raise self.error(
+                "the value is undefined or not a real number (log or sqrt of a negative"
+                " number, 0 to a negative power, a negative number to a fractional power)",
+                tok,
+                allowed="",
+            ) from None
+        if isinstance(value, bool):
+            return value
+        return self.constant(float(value), tok)
+
+    def build(
+        self,
+        fn: Callable[..., sp.Basic],
+        args: list[_Node],
+        tok: _Token,
+        value_fn: Callable[..., float] | None = None,
+    ) -> _Node:
+        """Call a sympy constructor and check what comes out."""
+        value = None
+        if value_fn is not None:
+            value = self.evaluate(value_fn, [a.value for a in args], tok)
+        try:
+            result = fn(*(a.expr for a in args))
+        except (TypeError, ValueError, ArithmeticError, AttributeError, RecursionError) as exc:
             raise self.error(f"cannot form this expression ({type(exc).__name__})", tok) from None
         self.check(result, tok)
-        return result
+        return _Node(result, value)
 
     def check_number(self, num: sp.Basic, tok: _Token) -> None:
         if num in (sp.S.NaN, sp.S.ComplexInfinity, sp.S.Infinity, sp.S.NegativeInfinity):
@@ -311,28 +410,27 @@ class _Parser:
             )
         if num.is_Rational:
             p, q = int(num.p), int(num.q)
-            if (
-                p.bit_length() > _MAX_BITS
-                or q.bit_length() > _MAX_BITS
-                or abs(p) > 10**300 * q
-            ):
+            if p.bit_length() > _MAX_BITS or q.bit_length() > _MAX_BITS or abs(p) > 10**300 * q:
                 raise self.error(
-                    f"a constant is out of range (magnitude above {MAX_MAGNITUDE:g} or too"
-                    " many digits)",
+                    f"a constant is out of range (larger than {MAX_MAGNITUDE:g} in magnitude"
+                    " or too many digits)",
                     tok,
                     allowed="",
                 )
-        elif num.is_Float:
-            if not abs(num) <= MAX_MAGNITUDE:
-                raise self.error(
-                    f"a constant is larger than {MAX_MAGNITUDE:g} in magnitude", tok, allowed=""
-                )
+        elif num.is_Float and not abs(num) <= MAX_MAGNITUDE:
+            raise self.error(
+                f"a constant is out of range (larger than {MAX_MAGNITUDE:g} in magnitude)",
+                tok,
+                allowed="",
+            )
 
     def check(self, expr: sp.Basic, tok: _Token) -> None:
         """Bounded look at a freshly built node: numbers in range, exponents bounded, real."""
         stack: list[tuple[sp.Basic, int]] = [(expr, 0)]
         while stack:
             node, level = stack.pop()
+            if node is sp.S.ImaginaryUnit:
+                raise self.error("the value is not a real number", tok, allowed="")
             if node.is_Number or node is sp.S.ComplexInfinity:
                 self.check_number(node, tok)
                 continue
@@ -342,44 +440,45 @@ class _Parser:
                 )
             if level < 2:
                 stack.extend((a, level + 1) for a in node.args)
-        if isinstance(expr, sp.Expr) and not expr.free_symbols and expr.is_extended_real is False:
-            raise self.error("the value is not a real number", tok, allowed="")
 
     # ------------------------------------------------------------------ parser
     def parse(self) -> sp.Expr:
         self.tokenize()
         if self.peek.kind == "end":
             raise self.error("empty expression", self.peek)
-        expr = self.expression()
+        node = self.expression()
         if self.peek.kind != "end":
             raise self.unexpected(self.peek, "the end of the expression")
-        return expr
+        return node.expr
 
-    def expression(self) -> sp.Expr:
+    def negate(self, node: _Node, tok: _Token) -> _Node:
+        return self.build(sp.Mul, [_MINUS_ONE, node], tok, lambda a, b: a * b)
+
+    def expression(self) -> _Node:
         first = self.peek
         terms = [self.term()]
         while self.is_op("+", "-"):
             op = self.advance()
             term = self.term()
-            terms.append(term if op.text == "+" else self.build(sp.Mul, (sp.S.NegativeOne, term), op))
+            terms.append(term if op.text == "+" else self.negate(term, op))
         if len(terms) == 1:
             return terms[0]
-        return self.build(sp.Add, tuple(terms), first)
+        return self.build(sp.Add, terms, first, lambda *v: math.fsum(v))
 
-    def term(self) -> sp.Expr:
+    def term(self) -> _Node:
         first = self.peek
         factors = [self.unary()]
         while self.is_op("*", "/"):
             op = self.advance()
             factor = self.unary()
             if op.text == "/":
-                factor = self.power_of(factor, sp.S.NegativeOne, op)
+                factor = self.power_of(factor, _MINUS_ONE, op)
             factors.append(factor)
         if len(factors) == 1:
             return factors[0]
-        return self.build(sp.Mul, tuple(factors), first)
+        return self.build(sp.Mul, factors, first, lambda *v: math.prod(v))
 
-    def unary(self) -> sp.Expr:
+    def unary(self) -> _Node:
         tok = self.peek
         self.depth += 1
         if self.depth > MAX_DEPTH:
@@ -390,14 +489,12 @@ class _Parser:
             if self.is_op("+", "-"):
                 op = self.advance()
                 operand = self.unary()
-                if op.text == "+":
-                    return operand
-                return self.build(sp.Mul, (sp.S.NegativeOne, operand), op)
+                return operand if op.text == "+" else self.negate(operand, op)
             return self.power()
         finally:
             self.depth -= 1
 
-    def power(self) -> sp.Expr:
+    def power(self) -> _Node:
         base = self.atom()
         if self.is_op("**", "^"):
             op = self.advance()
@@ -405,25 +502,26 @@ class _Parser:
             return self.power_of(base, exponent, op)
         return base
 
-    def power_of(self, base: sp.Expr, exponent: sp.Expr, tok: _Token) -> sp.Expr:
-        if exponent.is_Number:
-            if abs(exponent) > MAX_EXPONENT:
+    def power_of(self, base: _Node, exponent: _Node, tok: _Token) -> _Node:
+        b, e = base.expr, exponent.expr
+        if e.is_Number:
+            if abs(e) > MAX_EXPONENT:
                 raise self.error(
-                    f"constant exponent {exponent} is larger than {MAX_EXPONENT} in magnitude",
+                    f"constant exponent {e} is larger than {MAX_EXPONENT} in magnitude",
                     tok,
                     allowed="",
                 )
-            if base.is_Rational and exponent.is_Integer:
-                bits = max(int(base.p).bit_length(), int(base.q).bit_length())
-                if bits * abs(int(exponent)) > 4 * _MAX_BITS:
+            if b.is_Rational and e.is_Integer:
+                bits = max(int(b.p).bit_length(), int(b.q).bit_length())
+                if bits * abs(int(e)) > 4 * _MAX_BITS:
                     raise self.error(
                         f"constant power is larger than {MAX_MAGNITUDE:g}", tok, allowed=""
                     )
-            elif base.is_Rational and exponent.is_Rational and int(exponent.q) > MAX_EXPONENT:
+            elif b.is_Rational and e.is_Rational and int(e.q) > MAX_EXPONENT:
                 raise self.error("constant exponent has too many digits", tok, allowed="")
-        return self.build(sp.Pow, (base, exponent), tok)
+        return self.build(sp.Pow, [base, exponent], tok, _float_pow)
 
-    def atom(self) -> sp.Expr:
+    def atom(self) -> _Node:
         tok = self.advance()
         if tok.kind == "number":
             return self.number(tok)
@@ -437,18 +535,19 @@ class _Parser:
             return inner
         raise self.unexpected(tok, "a number, a name or '('")
 
-    def number(self, tok: _Token) -> sp.Expr:
+    def number(self, tok: _Token) -> _Node:
         text = tok.text
         if all(c in "0123456789" for c in text):
             if len(text.lstrip("0")) > 300:
                 raise self.error(f"number is larger than {MAX_MAGNITUDE:g}", tok, allowed="")
-            return sp.Integer(int(text))
+            integer = int(text)
+            return _Node(sp.Integer(integer), self.constant(float(integer), tok))
         value = float(text)
         if not abs(value) <= MAX_MAGNITUDE:
             raise self.error(f"number is larger than {MAX_MAGNITUDE:g}", tok, allowed="")
-        return sp.Float(value)
+        return _Node(sp.Float(value), value)
 
-    def name(self, tok: _Token) -> sp.Expr:
+    def name(self, tok: _Token) -> _Node:
         name = tok.text
         if self.is_op("("):
             if name in FUNCTIONS:
@@ -468,9 +567,10 @@ class _Parser:
                 raise self.error(f"setting {name!r} is not a number", tok, allowed="")
             if not (math.isfinite(value) and abs(value) <= MAX_MAGNITUDE):
                 raise self.error(f"setting {name!r} is not a finite number", tok, allowed="")
-            return _number_from_float(value)
+            return _Node(_number_from_float(value), float(value))
         if name in self.names:
-            return self.names[name]
+            expr = self.names[name]
+            return _Node(expr, float(expr) if expr.is_Number else None)
         raise self.error(f"unknown name {name!r}", tok, allowed=self.known_names(name))
 
     def known_names(self, name: str) -> str:
@@ -482,16 +582,18 @@ class _Parser:
         hint = f"; did you mean {close[0]!r}?" if close else ""
         return f"declared names: {shown}{hint}"
 
-    def call(self, tok: _Token) -> sp.Expr:
+    def call(self, tok: _Token) -> _Node:
         fname = tok.text
         self.expect("(", "'('")
-        args: list[sp.Basic] = []
+        args: list[_Node] = []
         if not self.is_op(")"):
             while True:
                 if len(args) >= _MAX_ARGUMENTS:
-                    raise self.error(f"too many arguments to {fname}", tok, allowed="")
+                    raise self.error(
+                        f"too many arguments to {fname} (at most {_MAX_ARGUMENTS})", tok, allowed=""
+                    )
                 if fname == "piecewise" and not args:
-                    args.append(self.condition(tok))
+                    args.append(self.condition())
                 else:
                     args.append(self.expression())
                 if not self.is_op(","):
@@ -504,11 +606,13 @@ class _Parser:
         if fname in _FUNCTIONS_1:
             if count != 1:
                 raise self.error(f"{fname} takes exactly 1 argument, got {count}", tok, allowed="")
-            return self.build(_FUNCTIONS_1[fname], (args[0],), tok)
+            sympy_fn, float_fn = _FUNCTIONS_1[fname]
+            return self.build(sympy_fn, args, tok, float_fn)
         if fname in _FUNCTIONS_N:
             if count < 2:
                 raise self.error(f"{fname} takes 2 or more arguments, got {count}", tok, allowed="")
-            return self.build(_FUNCTIONS_N[fname], tuple(args), tok)
+            sympy_fn, float_fn = _FUNCTIONS_N[fname]
+            return self.build(sympy_fn, args, tok, float_fn)
         # piecewise
         if count != 3:
             raise self.error(
@@ -517,9 +621,9 @@ class _Parser:
                 allowed="",
             )
         cond, then, otherwise = args
-        return self.build(lambda a, c, b: sp.Piecewise((a, c), (b, True)), (then, cond, otherwise), tok)
+        return self.build(_piecewise, [cond, then, otherwise], tok, _piecewise_value)
 
-    def condition(self, call: _Token) -> sp.Basic:
+    def condition(self) -> _Node:
         left = self.expression()
         if not (self.peek.kind == "op" and self.peek.text in _COMPARISONS):
             raise self.error(
@@ -529,4 +633,13 @@ class _Parser:
             )
         op = self.advance()
         right = self.expression()
-        return self.build(_COMPARISONS[op.text], (left, right), op)
+        if left.expr.has(sp.Piecewise) or right.expr.has(sp.Piecewise):
+            # sympy rewrites such conditions through its logic simplifier (unbounded time)
+            raise self.error(
+                "piecewise(...) is not allowed inside a piecewise condition; compare plain"
+                " expressions",
+                op,
+                allowed="",
+            )
+        sympy_fn, float_fn = _COMPARISONS[op.text]
+        return self.build(sympy_fn, [left, right], op, float_fn)

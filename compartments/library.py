@@ -183,8 +183,11 @@ def read_template(
 def _looks_like_path(name: str | os.PathLike[str]) -> bool:
     if isinstance(name, os.PathLike):
         return True
-    return name.endswith(".toml") or "/" in name or os.sep in name or (
-        os.altsep is not None and os.altsep in name
+    return (
+        name.endswith(".toml")
+        or "/" in name
+        or os.sep in name
+        or (os.altsep is not None and os.altsep in name)
     )
 
 

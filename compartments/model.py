@@ -95,6 +95,8 @@ class Model:
     _b: Callable[..., Array] | None
     _bp: Callable[..., Array] | None
     routes: Mapping[str, RouteInput] = field(default_factory=dict)
+    _flat: Callable[..., Any] | None = None  # f as a flat list, (x, θ) unpacked
+    _aug: Callable[..., Any] | None = None  # [f; f_x S + f_θ] flat, (x, S param-major, θ) unpacked
 
     @property
     def n_states(self) -> int:
@@ -133,6 +135,15 @@ class Model:
     # -- evaluation helpers (x: (n,) or (n, T); theta: (p,)) ---------------------------
     def rhs(self, x: Array, theta: Array) -> Array:
         return self._f(*x, *theta).reshape(-1)
+
+    def rhs_augmented(self, z: Array, theta: Array, sensitivities: bool) -> Array:
+        """``f`` (or ``[f; f_x S + f_θ]`` with S stored parameter-major in ``z[n:]``) as one
+        generated call: the integrator's inner loop."""
+        if sensitivities:
+            assert self._aug is not None
+            return np.asarray(self._aug(*z, *theta), dtype=float)
+        assert self._flat is not None
+        return np.asarray(self._flat(*z, *theta), dtype=float)
 
     def jac_states(self, x: Array, theta: Array) -> Array:
         return self._fx(*x, *theta)
@@ -202,9 +213,9 @@ def compile_model(template: Template) -> Model:
     is_linear = all(not (e.free_symbols & state_set) for row in fx for e in row)
     A_fn = Ap_fn = b_fn = bp_fn = None
     if is_linear:
-        A = [[sp.simplify(e) for e in row] for row in fx]
+        A = fx
         zero = {x: 0 for x in xs}
-        b = [sp.simplify(fi.subs(zero)) for fi in f]
+        b = [fi.subs(zero) for fi in f]
         A_fn = _lambdify_matrix(ps, A)
         Ap_rows = [[sp.diff(A[i][k], pj) for k in range(len(xs))] for pj in ps for i in range(len(xs))]
         Ap_fn = _lambdify_matrix(ps, Ap_rows) if Ap_rows else _lambdify_matrix(ps, [[sp.Integer(0)]])
@@ -221,6 +232,16 @@ def compile_model(template: Template) -> Model:
             bioavailability_grad=_lambdify_matrix(ps, [[sp.diff(F, pj) for pj in ps]]),
             lag_index=template.parameter_names.index(di.lag) if di.lag else None,
         )
+
+    # one generated function for states and forward sensitivities together (CSE shared)
+    S = [[sp.Symbol(f"_s_{j}_{i}", real=True) for i in range(len(xs))] for j in range(len(ps))]
+    sens_rhs = [
+        sum((fx[i][m] * S[j][m] for m in range(len(xs))), sp.Integer(0)) + fp[i][j]
+        for j in range(len(ps)) for i in range(len(xs))
+    ]
+    flat_S = [v for row in S for v in row]
+    aug = sp.lambdify(xs + flat_S + ps, f + sens_rhs, modules="numpy", cse=True)
+    flat = sp.lambdify(args, f, modules="numpy", cse=True)
 
     return Model(
         template=template,
@@ -241,6 +262,8 @@ def compile_model(template: Template) -> Model:
         _b=b_fn,
         _bp=bp_fn,
         routes=routes,
+        _flat=flat,
+        _aug=aug,
     )
 
 

@@ -25,11 +25,14 @@ from numpy.typing import NDArray
 from scipy.integrate import solve_ivp
 from scipy.linalg import expm
 
-from .dosing import Dose
+from ._threads import limit_blas_threads
+from .dosing import Dose, resolve_route
 from .errors import SimulationError, UsageError
 from .model import Model
 
 Array = NDArray[np.float64]
+
+limit_blas_threads()
 
 
 @dataclass(frozen=True)
@@ -95,21 +98,14 @@ def _events(model: Model, doses: Sequence[Dose], theta: Array) -> list[_Event]:
     p = model.n_params
     out: list[_Event] = []
     for d in doses:
-        route = d.route
-        entry = model.routes.get(route)
-        if entry is None and route == "infusion":
-            entry = model.routes.get("iv")
-        if entry is None:
-            accepted = ", ".join(model.routes) or "none (this model takes no doses)"
-            raise UsageError(
-                f"template {model.template.name!r} has no {route!r} dose input; it accepts: {accepted}"
-            )
+        route = resolve_route(d.route, tuple(model.routes), model.template.name)
+        entry = model.routes[route]
         F = float(entry.bioavailability(*theta).reshape(-1)[0])
         dF = entry.bioavailability_grad(*theta).reshape(-1)
         lag = float(theta[entry.lag_index]) if entry.lag_index is not None else 0.0
         t0 = float(d.time) + lag
         zero = np.zeros(p)
-        if route == "infusion":
+        if d.route == "infusion":
             rate = d.infusion_rate
             dur = d.infusion_duration
             out.append(_Event(t0, entry.state_index, 0.0, zero, rate * F, rate * dF, entry.lag_index))
@@ -292,8 +288,18 @@ def _solve_expm(model: Model, theta: Array, events: list[_Event], t: Array, sens
     return X, S_out
 
 
+class _Budget(Exception):
+    """The integrator used up its evaluation budget."""
+
+
+#: Right-hand-side evaluations allowed for one simulation (a runaway solution or an
+#: extremely stiff regime ends as a SimulationError instead of running for minutes).
+MAX_EVALUATIONS = 50_000
+
+
 def _solve_ode(model: Model, theta: Array, events: list[_Event], t: Array, sens: bool,
-               rtol: float, atol: float | None) -> tuple[Array, Array | None]:
+               rtol: float, atol: float | None, max_evaluations: int = MAX_EVALUATIONS
+               ) -> tuple[Array, Array | None]:
     n, p = model.n_states, model.n_params
     X = np.zeros((t.size, n))
     S_out = np.zeros((t.size, n, p)) if sens else None
@@ -309,14 +315,17 @@ def _solve_ode(model: Model, theta: Array, events: list[_Event], t: Array, sens:
     ts = t[order]
     k = 0
 
+    budget = [max_evaluations]
+
     def fun(_t: float, z: Array, c: Array, cS: Array) -> Array:
-        xs = z[:n]
-        dx = model.rhs(xs, theta) + c
-        if not sens:
-            return dx
-        Sm = z[n:].reshape(p, n).T
-        dS = model.jac_states(xs, theta) @ Sm + model.jac_params(xs, theta) + cS
-        return np.concatenate([dx, dS.T.reshape(-1)])
+        budget[0] -= 1
+        if budget[0] < 0:
+            raise _Budget
+        out = model.rhs_augmented(z, theta, sens)
+        out[:n] += c
+        if sens:
+            out[n:] += cS
+        return out
 
     def jac(_t: float, z: Array, c: Array, cS: Array) -> Array:
         J = model.jac_states(z[:n], theta)
@@ -331,9 +340,16 @@ def _solve_ode(model: Model, theta: Array, events: list[_Event], t: Array, sens:
         end = stop if np.isfinite(stop) else (float(t_eval[-1]) if t_eval.size else start)
         z0 = np.concatenate([x, S.T.reshape(-1)]) if sens else x.copy()
         if end > start:
-            sol = solve_ivp(fun, (start, end), z0, method="LSODA", t_eval=np.unique(np.r_[t_eval, end]),
-                            args=(b_c := u.copy(), uS.copy()), rtol=rtol, atol=a_tol, jac=jac)
-            del b_c
+            try:
+                with np.errstate(over="raise", invalid="raise"):
+                    sol = solve_ivp(fun, (start, end), z0, method="LSODA", t_eval=np.unique(np.r_[t_eval, end]),
+                                    args=(u.copy(), uS.T.reshape(-1).copy()), rtol=rtol, atol=a_tol,
+                                    jac=jac)
+            except (_Budget, FloatingPointError):
+                raise SimulationError(
+                    f"the integrator gave up on {model.template.name!r} between t={start:g} and t={end:g}: "
+                    "the solution grows without bound or needs too many steps at these parameters"
+                ) from None
             if sol.status != 0 or not np.all(np.isfinite(sol.y)):
                 raise SimulationError(
                     f"the integrator failed for {model.template.name!r} between t={start:g} and "

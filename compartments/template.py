@@ -446,9 +446,7 @@ class _Reader:
     # ---------------------------------------------------------------- checkers
     def table(self, value: object, key: tuple[str, ...]) -> dict:
         if not isinstance(value, dict):
-            raise self.fail(
-                f"[{'.'.join(key)}] must be a table, got {_type_name(value)}", key
-            )
+            raise self.fail(f"[{'.'.join(key)}] must be a table, got {_type_name(value)}", key)
         return value
 
     def keys(self, table: dict, key: tuple[str, ...], spec: Mapping[str, bool]) -> None:
@@ -456,9 +454,7 @@ class _Reader:
         label = f"in [{'.'.join(key)}]" if key else "at the top level"
         for k in table:
             if k not in spec:
-                raise self.fail(
-                    f"unknown key {k!r} {label}; allowed keys: {allowed}", key + (k,)
-                )
+                raise self.fail(f"unknown key {k!r} {label}; allowed keys: {allowed}", key + (k,))
         for k, required in spec.items():
             if required and k not in table:
                 raise self.fail(f"missing required key {k!r} {label}", key)
@@ -475,9 +471,7 @@ class _Reader:
     def unit(self, value: object, key: tuple[str, ...]) -> str:
         unit = self.text_value(value, key, limit=40)
         if not unit.strip() or not unit.isprintable():
-            raise self.fail(
-                f"{'.'.join(key)} must be a short printable unit such as 'mg/L'", key
-            )
+            raise self.fail(f"{'.'.join(key)} must be a short printable unit such as 'mg/L'", key)
         return unit.strip()
 
     def flag(self, value: object, key: tuple[str, ...]) -> bool:
@@ -491,9 +485,7 @@ class _Reader:
         if isinstance(value, int) and abs(value) > _LARGEST:
             raise self.fail(f"{'.'.join(key)} is larger than {_LARGEST:g}", key)
         if not math.isfinite(value) or abs(value) > _LARGEST:
-            raise self.fail(
-                f"{'.'.join(key)} must be a finite number, got {value!r}", key
-            )
+            raise self.fail(f"{'.'.join(key)} must be a finite number, got {value!r}", key)
         return value
 
     def name(self, name: str, key: tuple[str, ...], what: str) -> str:
@@ -596,9 +588,10 @@ def parse_template(
     reader = _Reader("", path)
     if not isinstance(text, str):
         raise reader.fail(f"template text must be a string, got {type(text).__name__}")
-    if len(text) > MAX_TEMPLATE_BYTES or len(
-        text.encode("utf-8", "surrogatepass")
-    ) > MAX_TEMPLATE_BYTES:
+    if (
+        len(text) > MAX_TEMPLATE_BYTES
+        or len(text.encode("utf-8", "surrogatepass")) > MAX_TEMPLATE_BYTES
+    ):
         raise reader.fail(
             f"template is larger than {MAX_TEMPLATE_BYTES // 1_000_000} MB; a template"
             " should be a few kilobytes - check that this is the right file"
@@ -767,9 +760,7 @@ class _Builder:
         if required and not table:
             raise r.fail(f"[{key}] must declare at least one entry", (key,))
         if len(table) > limit:
-            raise r.fail(
-                f"[{key}] has {len(table)} entries; the limit is {limit}", (key,)
-            )
+            raise r.fail(f"[{key}] has {len(table)} entries; the limit is {limit}", (key,))
         return table
 
     def settings(self) -> dict[str, float]:
@@ -794,8 +785,10 @@ class _Builder:
                     path=r.path,
                     where="settings",
                 )
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or not (
-                math.isfinite(v) and abs(v) <= _LARGEST
+            if (
+                isinstance(v, bool)
+                or not isinstance(v, (int, float))
+                or not (math.isfinite(v) and abs(v) <= _LARGEST)
             ):
                 raise TemplateError(
                     f"setting {k!r} must be a finite number, got {v!r}",
@@ -927,7 +920,7 @@ class _Builder:
             at_defaults = {param_symbols[p.name]: p.default for p in parameters}
             try:
                 value = complex(initial.subs(at_defaults))
-            except (TypeError, ValueError):
+            except (TypeError, ValueError, ArithmeticError):
                 value = None
             if value is not None and value.imag == 0 and value.real < 0:
                 raise r.fail(
@@ -965,9 +958,7 @@ class _Builder:
             if s in generated:
                 continue
             if s not in table:
-                raise r.fail(
-                    f"state {s!r} has no equation; add {s} = \"...\" under [equations]", key
-                )
+                raise r.fail(f'state {s!r} has no equation; add {s} = "..." under [equations]', key)
             parsed[s] = r.expression(table[s], key + (s,), names, settings)
         if chain is not None:
             rate = chain["rate"]
@@ -991,9 +982,7 @@ class _Builder:
         for route, entry in raw.items():
             key = ("doses", route)
             if route not in ROUTES:
-                raise r.fail(
-                    f"unknown route {route!r}; routes are {', '.join(ROUTES)}", key
-                )
+                raise r.fail(f"unknown route {route!r}; routes are {', '.join(ROUTES)}", key)
             table = r.table(entry, key)
             r.keys(table, key, _DOSE_KEYS)
             state = r.text_value(table["state"], key + ("state",))
@@ -1007,9 +996,7 @@ class _Builder:
                 table.get("bioavailability", 1), key + ("bioavailability",), param_symbols, settings
             )
             if f.is_Number and not 0 < f <= 1:
-                raise r.fail(
-                    f"bioavailability {f} must be in (0, 1]", key + ("bioavailability",)
-                )
+                raise r.fail(f"bioavailability {f} must be in (0, 1]", key + ("bioavailability",))
             lag = None
             if "lag" in table:
                 lag = r.text_value(table["lag"], key + ("lag",))

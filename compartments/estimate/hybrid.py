@@ -230,7 +230,7 @@ def fit(
                 starts = list(net.candidates or (net.phi,)) + [defaults]
             elif strategy == "multistart":
                 lo, hi = problem.phi_bounds
-                sob = qmc.Sobol(d=problem.n_free, scramble=True, seed=seed).random(max(n_starts - 1, 1))
+                sob = qmc.Sobol(d=problem.n_free, scramble=True, seed=seed).random_base2(max(int(np.ceil(np.log2(max(n_starts - 1, 1)))), 0))[: max(n_starts - 1, 1)]
                 starts = [defaults] + [lo + (hi - lo) * s for s in sob]
             else:
                 starts = [defaults]

@@ -25,7 +25,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.optimize import least_squares, minimize
 
-from ..errors import CompartmentsError
+from ..errors import CompartmentsError, SimulationError
 from .likelihood import _sd, initial_eta, n_error_parameters, neg2ll
 from .problem import Problem
 from .stages import StageResult
@@ -37,7 +37,7 @@ def is_plain_least_squares(problem: Problem) -> bool:
     """True when the likelihood fit reduces to ordinary least squares."""
     return (
         problem.error == "additive"
-        and len(problem.model.observable_names) == 1
+        and np.unique(problem.obs_index).size <= 1
         and not bool(np.any(problem.censored))
     )
 
@@ -107,7 +107,11 @@ class LikelihoodStage:
 
         def pred(p: Array) -> tuple[Array, Array]:
             if cache.phi is None or not np.array_equal(cache.phi, p):
-                f, J = problem.predict(p, jacobian=True)
+                try:
+                    f, J = problem.predict(p, jacobian=True)
+                except SimulationError:
+                    # the trust region shrinks on non-finite residuals; the step is rejected
+                    f, J = np.full(y.size, np.nan), np.zeros((y.size, p.size))
                 cache.phi, cache.f, cache.J = p.copy(), f, J
             assert cache.f is not None and cache.J is not None
             return cache.f, cache.J

@@ -108,19 +108,26 @@ def estimate_uncertainty(problem: Problem, phi: Array, eta: Array, level: float 
 
         x = np.concatenate([phi, eta])
         H = hessian(grad, x)
-        singular, bad = _information_singular(H)
-        bad = tuple(i for i in bad if i < k)
+        # error parameters of observables without data carry no information: leave them out
+        keep = list(range(k)) + [k + j for j in range(n_err) if np.any(H[k + j] != 0)]
+        Hk = H[np.ix_(keep, keep)]
+        singular, bad = _information_singular(Hk)
+        bad = tuple(keep[i] for i in bad if keep[i] < k)
         if singular and not bad:
             singular = False  # only error parameters are poorly determined
-        if singular:
-            cov = np.full((k, k), np.nan)
-        else:
-            full = np.linalg.inv(H)
-            cov = full[:k, :k]
-            cov_err = full[k:, k:]
-            if np.any(np.diag(cov) < 0):
-                singular, bad = True, tuple(int(i) for i in np.flatnonzero(np.diag(cov) < 0))
-                cov = np.full((k, k), np.nan)
+        cov = np.full((k, k), np.nan)
+        if not singular:
+            try:
+                full = np.linalg.inv(Hk)
+            except np.linalg.LinAlgError:
+                singular, bad = True, tuple(range(k))
+            else:
+                cov = full[:k, :k]
+                cov_err = full[k:, k:]
+                if np.any(np.diag(cov) < 0) or not np.all(np.isfinite(cov)):
+                    singular = True
+                    bad = tuple(int(i) for i in np.flatnonzero(~(np.diag(cov) >= 0))) or tuple(range(k))
+                    cov = np.full((k, k), np.nan)
     se_phi = np.sqrt(np.clip(np.diag(cov), 0, None)) if not singular else np.full(k, np.nan)
     q = float(stats.t.ppf(0.5 + level / 2, df)) if df >= 1 else float("nan")
     theta = problem.to_theta_free(phi)

@@ -152,6 +152,7 @@ def resolve_columns(
     columns: Mapping[str, str] | str | Path | None,
     dose_column: str | None,
     path: str | None,
+    header_row: int = 1,
 ) -> ColumnRoles:
     """Decide which column plays which role.
 
@@ -188,7 +189,7 @@ def resolve_columns(
                 f"the column mapping names '{wanted}' for the {role}, but the file has no such column; "
                 f"columns found: {found}",
                 path,
-                1,
+                header_row,
                 wanted,
             )
         if len(hits) > 1:
@@ -196,7 +197,7 @@ def resolve_columns(
                 f"'{wanted}' matches several columns ({', '.join(repr(header[j]) for j in hits)}); "
                 "map the exact header text",
                 path,
-                1,
+                header_row,
                 wanted,
             )
         taken = [r for r, j in roles.items() if j == hits[0]]
@@ -214,7 +215,7 @@ def resolve_columns(
                 f"columns {listed} could each be the {role}; choose one with "
                 f"columns={{'{role}': '{header[hits[0]]}'}} (command line: --map {role}='{header[hits[0]]}')",
                 path,
-                1,
+                header_row,
                 header[hits[1]],
             )
         if hits:
@@ -226,6 +227,6 @@ def resolve_columns(
                 f"no column for the {role}: columns found: {found}, and none is named {words}; "
                 f"name it with columns={{'{role}': 'COLUMN'}} (command line: --map {role}=COLUMN)",
                 path,
-                1,
+                header_row,
             )
     return ColumnRoles(tuple(header), names, units, roles, how)

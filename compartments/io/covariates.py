@@ -41,7 +41,7 @@ def read_covariates(
         name = cols.names[j]
         varying = None
         first: dict[str, str] = {}
-        for i, (s, text) in enumerate(zip(subject, cells)):
+        for i, (s, text) in enumerate(zip(subject, cells, strict=False)):
             if is_missing(text):
                 continue
             if s not in first:

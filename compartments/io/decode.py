@@ -77,7 +77,7 @@ def decode_text(data: bytes, path: str | None) -> tuple[str, list[ReadNote]]:
             line,
             None,
             "flagged",
-            f"the file is not valid UTF-8 (first bad byte on this line); read as Latin-1 — "
+            "the file is not valid UTF-8 (first bad byte on this line); read as Latin-1 — "
             "check accented names, or save the file as UTF-8",
         )
         return text, [note]

@@ -41,7 +41,7 @@ def sniff_delimiter(text: str, prefer: str = ",") -> str:
 
 def parse_delimited(
     text: str, path: str | None, prefer: str = ","
-) -> tuple[list[str], list[list[str]], list[int], str]:
+) -> tuple[list[str], list[list[str]], list[int], int]:
     """Split delimited text into a header and data rows.
 
     Blank lines are skipped. Cells are stripped of surrounding spaces; rows shorter than
@@ -53,7 +53,8 @@ def parse_delimited(
     rows : list of list of str
     row_numbers : list of int
         1-based line number of each data row (header = 1 when the file starts with it).
-    delimiter_name : str
+    header_row : int
+        Line number of the header.
 
     Raises
     ------
@@ -63,6 +64,7 @@ def parse_delimited(
     delim = sniff_delimiter(text, prefer)
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=delim)
     header: list[str] | None = None
+    header_row = 1
     rows: list[list[str]] = []
     numbers: list[int] = []
     try:
@@ -71,7 +73,7 @@ def parse_delimited(
                 continue
             cells = [c.strip() for c in record]
             if header is None:
-                header = cells
+                header, header_row = cells, reader.line_num
                 continue
             if len(cells) > len(header):
                 extra = cells[len(header):]
@@ -93,4 +95,4 @@ def parse_delimited(
             path,
             reader.line_num,
         ) from None
-    return header or [], rows, numbers, _NAMES[delim]
+    return header or [], rows, numbers, header_row

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from ..dosing import Dose
+from ..dosing import AUTO, Dose
 from ..errors import DataError, UsageError
 from .columns import ColumnRoles
 from .notes import ReadNote
@@ -33,6 +33,9 @@ from .records import Records
 from .rowlist import fail_rows, rows_text
 
 LAYOUTS = ("auto", "rows", "per-subject")
+_AUTO_NOTE = ("the file does not say how the doses were given: each enters the model's only dose input "
+              "(oral for an oral template, iv for an intravenous one); give route= (command line: --route) "
+              "or a route column to be explicit")
 _ROUTE_FIX = "pass route='iv', 'oral' or 'infusion' (command line: --route) or add a route column"
 
 
@@ -153,7 +156,8 @@ def _blq_dropped(rec: Records) -> NDArray[np.bool_]:
 def _supplied(rec: Records, subjects: list[str], dose: float, dose_time: float, route: str | None,
               duration: float | None, notes: list[ReadNote]) -> DosePlan:
     if route is None:
-        raise UsageError(f"dose={dose} needs a route: pass route='iv', 'oral' or 'infusion' (command line: --route)")
+        route = AUTO
+        notes.append(ReadNote(None, None, "supplied", _AUTO_NOTE))
     if route == "infusion" and duration is None:
         raise UsageError("an infusion given with dose= needs duration= (in the file's time unit)")
     t = dose_time * rec.factor
@@ -185,7 +189,9 @@ def _per_subject(rec: Records, subjects: list[str], amount: NDArray[np.float64],
         r = _subject_value(rec.route, idx, rec, path, "route", s, cols_route) if rec.route is not None else None
         r = r or route
         if r is None:
-            raise DataError(f"no route is known for the dose of subject {s}; {_ROUTE_FIX}", path, int(rec.rows[have[0]]), column)
+            r = AUTO
+            if not any(n.reason == _AUTO_NOTE for n in notes):
+                notes.append(ReadNote(None, column, "supplied", _AUTO_NOTE))
         dur = _subject_number(rec.duration, idx)
         rate = _subject_number(rec.rate, idx)
         if dur is None and duration is not None:
@@ -229,21 +235,21 @@ def _rows(rec: Records, cols: ColumnRoles, subjects: list[str], amount: NDArray[
     _refuse_dose_info_without_amount(rec, cols, path, dose_rows | (present & (amount == 0)))
     idx = np.flatnonzero(dose_rows)
     routes = [(rec.route[i] if rec.route is not None else None) or route for i in idx]
-    missing = [int(rec.rows[i]) for i, r in zip(idx, routes) if r is None]
-    if missing:
-        fail_rows("no route is known for this dose", _ROUTE_FIX, path, missing, cols.column("route") or column)
+    if any(r is None for r in routes):
+        routes = [r or AUTO for r in routes]
+        notes.append(ReadNote(None, cols.column("route") or column, "supplied", _AUTO_NOTE))
     durations = [float(rec.duration[i]) if rec.duration is not None and np.isfinite(rec.duration[i]) else None for i in idx]
     rates = [float(rec.rate[i]) if rec.rate is not None and np.isfinite(rec.rate[i]) else None for i in idx]
     if duration is not None:
         durations = [d if d is not None else duration * rec.factor for d in durations]
-    bad = [int(rec.rows[i]) for i, r, d, q in zip(idx, routes, durations, rates) if r == "infusion" and d is None and q is None]
+    bad = [int(rec.rows[i]) for i, r, d, q in zip(idx, routes, durations, rates, strict=False) if r == "infusion" and d is None and q is None]
     if bad:
         fail_rows("this infusion has neither a duration nor a rate",
                   "add a duration or rate column, or pass duration=", path, bad, cols.column("route") or column)
     seen: dict[tuple[str, float], int] = {}
     dup: list[int] = []
     doses: dict[str, list[Dose]] = {s: [] for s in subjects}
-    for i, r, d, q in zip(idx, routes, durations, rates):
+    for i, r, d, q in zip(idx, routes, durations, rates, strict=False):
         key = (rec.subject[i], float(rec.time[i]))
         if key in seen:
             dup.append(int(rec.rows[i]))

@@ -23,8 +23,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataError
-from .delimited import parse_delimited
 from .decode import decode_text
+from .delimited import parse_delimited
 from .notes import ReadNote
 
 TEXT_SUFFIXES = {".csv": ",", ".tsv": "\t", ".tab": "\t", ".txt": ","}
@@ -52,6 +52,8 @@ class RawTable:
     format : str
         ``"csv"``, ``"xlsx"``, ``"parquet"``, ``"DataFrame"``, ...
     notes : list of ReadNote
+    header_row : int
+        Source row of the header (1 unless blank rows come first).
     """
 
     header: list[str]
@@ -61,6 +63,7 @@ class RawTable:
     sha256: str | None
     format: str
     notes: list[ReadNote] = field(default_factory=list)
+    header_row: int = 1
 
     @property
     def n_rows(self) -> int:
@@ -130,9 +133,9 @@ def read_table(source: Any, sheet: str | int | None = None) -> RawTable:
 
 def _read_text(data: bytes, path: str, prefer: str) -> RawTable:
     text, notes = decode_text(data, path)
-    header, rows, numbers, _ = parse_delimited(text, path, prefer)
+    header, rows, numbers, header_row = parse_delimited(text, path, prefer)
     columns = [[r[j] for r in rows] for j in range(len(header))]
-    return RawTable(header, columns, numbers, path, None, "csv", notes)
+    return RawTable(header, columns, numbers, path, None, "csv", notes, header_row)
 
 
 def _read_excel(path: Path, shown: str, sheet: str | int | None) -> RawTable:
@@ -168,14 +171,16 @@ def _read_excel(path: Path, shown: str, sheet: str | int | None) -> RawTable:
             if sheet not in names:
                 raise DataError(f"the workbook has no sheet '{sheet}'; its sheets are {', '.join(repr(n) for n in names)}", shown)
             chosen = sheet
-        frame = book.parse(chosen, header=None, dtype=object)
+        frame = pd.read_excel(book, sheet_name=chosen, header=None, dtype=object)
     if frame.shape[0] == 0:
         raise DataError(f"sheet '{names[chosen] if isinstance(chosen, int) else chosen}' is empty; a study sheet needs a header row and data rows", shown)
-    header = [cell_text(x) for x in frame.iloc[0].tolist()]
-    body = frame.iloc[1:]
+    filled = [i for i in range(frame.shape[0]) if any(cell_text(x) for x in frame.iloc[i].tolist())]
+    top = filled[0] if filled else 0  # blank rows above the header are skipped
+    header = [cell_text(x) for x in frame.iloc[top].tolist()]
+    body = frame.iloc[top + 1:]
     columns = [[cell_text(x) for x in body.iloc[:, j].tolist()] for j in range(body.shape[1])]
-    rows = [int(i) + 1 for i in body.index]  # sheet rows are 1-based; the header is row 1
-    return RawTable(header, columns, rows, shown, None, path.suffix.lower().lstrip("."), notes)
+    rows = [int(i) + 1 for i in body.index]  # sheet rows are 1-based
+    return RawTable(header, columns, rows, shown, None, path.suffix.lower().lstrip("."), notes, top + 1)
 
 
 def _read_parquet(path: Path, shown: str) -> RawTable:
@@ -201,7 +206,7 @@ def _finish(table: RawTable) -> RawTable:
             keep.append(j)
             continue
         if all(not c for c in table.columns[j]):
-            table.notes.append(ReadNote(1, None, "dropped", f"column {j + 1} has no name and no values; ignored"))
+            table.notes.append(ReadNote(table.header_row, None, "dropped", f"column {j + 1} has no name and no values; ignored"))
             continue
         header[j] = f"column {j + 1}"
         keep.append(j)
@@ -214,12 +219,12 @@ def _finish(table: RawTable) -> RawTable:
                 f"the header names '{name}' twice (columns {seen[name] + 1} and {j + 1}); "
                 "give every column a distinct name",
                 table.path,
-                1,
+                table.header_row,
                 name,
             )
         seen[name] = j
     if not table.header:
-        raise DataError("the file has no header; the first line must name the columns", table.path, 1)
+        raise DataError("the file has no header; the first line must name the columns", table.path, table.header_row)
     empty = [i for i in range(table.n_rows) if all(not col[i] for col in table.columns)]
     if empty:
         for i in empty:

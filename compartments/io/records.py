@@ -14,7 +14,6 @@ from datetime import datetime
 import numpy as np
 from numpy.typing import NDArray
 
-from ..errors import DataError
 from . import values as V
 from .columns import ColumnRoles
 from .formats import RawTable
@@ -49,6 +48,7 @@ class Records:
     clock: bool
     origins: dict[str, str] = field(default_factory=dict)  # clock origin per subject (ISO text)
     blq_dropped: NDArray[np.bool_] | None = None
+    time_unit: str = "h"  # the axis unit of ``time``
 
     @property
     def n(self) -> int:
@@ -95,7 +95,7 @@ def parse_records(
         subject = list(subj_cells)
 
     time, clock, origins = _parse_times(col("time") or [], subject, rows, cols.column("time"), path,
-                                        time_factor(source_time_unit, time_axis), time_axis, notes)
+                                        time_factor(source_time_unit, time_axis), time_axis)
     # a time given as a number (dose_time=, duration=, a duration or rate column) is in
     # the file's time unit, or in hours when the file has date-times
     factor = time_factor("h" if clock else source_time_unit, time_axis)
@@ -130,7 +130,7 @@ def parse_records(
     censored = np.zeros(n, dtype=bool)
     dropped = _resolve_blq(kinds, value, lloq, censored, is_obs, rows, col("value") or [], path, vname, blq, notes)
     return Records(rows, subject, time, is_obs, value, censored, lloq, observable, amount, route,
-                   duration, rate, factor, clock, origins, dropped)
+                   duration, rate, factor, clock, origins, dropped, time_axis)
 
 
 def _refuse(mask: NDArray[np.bool_], rows: NDArray[np.int64], cells: list[str], path: str | None,
@@ -192,7 +192,7 @@ def _observables(cells: list[str] | None, rows: NDArray[np.int64], path: str | N
 
 
 def _parse_times(cells: list[str], subject: list[str], rows: NDArray[np.int64], column: str | None,
-                 path: str | None, factor: float, axis: str, notes: list[ReadNote]
+                 path: str | None, factor: float, axis: str
                  ) -> tuple[NDArray[np.float64], bool, dict[str, str]]:
     n = len(cells)
     kinds = np.empty(n, dtype=np.int8)
@@ -206,7 +206,12 @@ def _parse_times(cells: list[str], subject: list[str], rows: NDArray[np.int64], 
     if bad.any():
         clocks = [V.parse_clock(c) for c in cells]
         if all(c is not None for c in clocks):
-            return _clock_times(clocks, subject, rows, column, path, axis, notes)
+            return _clock_times(clocks, subject, rows, column, path, axis)
+        if all(clocks[i] is not None for i in np.flatnonzero(bad)):
+            numeric = np.flatnonzero(kinds == V.NUMBER)
+            fail_rows(f"'{cells[numeric[0]]}' is a number but other rows have date-times",
+                      "write every time the same way: all numbers or all ISO date-times",
+                      path, rows[numeric].tolist(), column)
         _refuse(bad, rows, cells, path, column, "is not a number",
                 "write times as numbers, or every time as an ISO date-time such as 2024-03-01 08:30")
     _refuse(kinds == V.NONFINITE, rows, cells, path, column, "is not a finite number", "every row needs a time")
@@ -218,30 +223,25 @@ def _parse_times(cells: list[str], subject: list[str], rows: NDArray[np.int64], 
 
 
 def _clock_times(clocks: list[datetime | None], subject: list[str], rows: NDArray[np.int64], column: str | None,
-                 path: str | None, axis: str, notes: list[ReadNote]) -> tuple[NDArray[np.float64], bool, dict[str, str]]:
-    """Date-times to hours since each subject's first record (a dose or a sample)."""
+                 path: str | None, axis: str) -> tuple[NDArray[np.float64], bool, dict[str, str]]:
+    """Date-times to axis units since each subject's first record (a dose or a sample).
+
+    The origins are returned as ISO text; :func:`~compartments.study.read_study` notes
+    them per subject once it knows whether the first record is a dose.
+    """
     aware = [c.tzinfo is not None for c in clocks if c is not None]
     if any(aware) and not all(aware):
         idx = [i for i, c in enumerate(clocks) if c is not None and (c.tzinfo is not None) != aware[0]]
         fail_rows("this date-time has a different time-zone style from the first row's",
                   "write every date-time with a time zone or none without", path, rows[idx].tolist(), column)
     first: dict[str, datetime] = {}
-    for s, c in zip(subject, clocks):
+    for s, c in zip(subject, clocks, strict=False):
         if c is not None and (s not in first or c < first[s]):
             first[s] = c
     per_h = time_factor("h", axis)
-    t = np.array([(c - first[s]).total_seconds() / 3600.0 * per_h for s, c in zip(subject, clocks) if c is not None])
+    t = np.array([(c - first[s]).total_seconds() / 3600.0 * per_h for s, c in zip(subject, clocks, strict=False) if c is not None])
     origins = {s: first[s].isoformat(sep=" ") for s in first}
-    notes.append(ReadNote(None, column, "changed",
-                          f"date-times converted to {axis} since each subject's first record "
-                          f"(origins: {_origins_text(origins)})"))
     return t, True, origins
-
-
-def _origins_text(origins: dict[str, str]) -> str:
-    items = list(origins.items())
-    text = "; ".join(f"subject {s}: {o}" for s, o in items[:5])
-    return text + (f"; and {len(items) - 5} more" if len(items) > 5 else "")
 
 
 def _resolve_blq(kinds: NDArray[np.int8], value: NDArray[np.float64], lloq: NDArray[np.float64],

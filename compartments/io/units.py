@@ -79,6 +79,7 @@ def declared_units(
     units: Mapping[str, str] | None,
     time_unit: str | None,
     path: str | None,
+    header_row: int = 1,
 ) -> tuple[dict[str, str], str, bool]:
     """Merge units from the header, ``units=`` and ``time_unit=``.
 
@@ -123,7 +124,7 @@ def declared_units(
                 f"the header gives the unit '{old}' but units= says '{unit}'; correct the header or drop "
                 "the unit from units=",
                 path,
-                1,
+                header_row,
                 header[j],
             )
         out[key] = unit
@@ -137,7 +138,7 @@ def declared_units(
             f"'{out['time']}' is not a time unit I know; use one of {', '.join(HOURS)} "
             "(or hours, minutes, days, weeks)",
             path,
-            1 if col else None,
+            header_row if col else None,
             col,
         )
     return out, canonical, assumed
@@ -233,5 +234,5 @@ def check_units(study: Study, template: Template) -> list[str]:
     else:
         out.append(f"dose in {dose_u} and values in {value_u}: volumes come out in {vol}, clearances in {vol}/{time_u}")
     if litres != 1.0:
-        out.append(f"the dose and value units differ in scale; convert one of them if you want volumes in L")
+        out.append("the dose and value units differ in scale; convert one of them if you want volumes in L")
     return out
