@@ -147,6 +147,11 @@ def run_one(config: str, n: int, strategy: str) -> dict:
     out["failed"] = cohort.n_failed
     out["fingerprint"] = fingerprint(cohort)
     out["fit_cpu_s"] = float(sum(f.wall_time for f in cohort.fits))
+    # fits whose network stage ended at its wall-clock budget: their numbers depend on load
+    out["network_stopped"] = sum(any(s.name == "network" and s.status == "stopped" for s in f.stages)
+                                 for f in cohort.fits)
+    out["per_fit"] = {f"{f.subject}|{f.template}": hashlib.sha256(repr((sorted(f.estimates.items()), f.objective))
+                                                                   .encode()).hexdigest()[:16] for f in cohort.fits}
     out.update(memory.report())
     return out
 
@@ -244,6 +249,15 @@ def main() -> None:
     prints = {r["fingerprint"] for r in results}
     summary["identical"] = len(prints) == 1
     print(f"  identical numbers across configurations: {summary['identical']}")
+    if not summary["identical"] and results:
+        ref = results[0]["per_fit"]
+        for r in results[1:]:
+            diff = [k for k, v in r["per_fit"].items() if ref.get(k) != v]
+            print(f"    {r['config']} differs from {results[0]['config']} in {len(diff)} fit(s): {', '.join(diff[:8])}")
+        print("    network stage stopped at its time budget: "
+              + ", ".join(f"{r['config']}: {r['network_stopped']}" for r in results))
+    for r in results:
+        r.pop("per_fit", None)
     k = args.null if args.null is not None else (10 if args.quick else 100)
     if k:
         summary["null"] = null_check(k, workers=2)

@@ -159,7 +159,7 @@ def _per_template(templates: Sequence[Template], fixed: Mapping[str, float] | No
                      tuple(n for n in estimate if n in t.parameter_names)) for t in templates}
 
 
-def _check_options(error: str, strategy: str, workers: int | None, fit_timeout: float | None,
+def _check_options(error: str, strategy: str, seed: Any, workers: int | None, fit_timeout: float | None,
                    criterion: str, bootstrap: int, run_dir: Any, resume: bool) -> None:
     if error not in ERROR_MODELS:
         raise UsageError(f"error={error!r} is not an error model; use one of {', '.join(ERROR_MODELS)}")
@@ -167,6 +167,8 @@ def _check_options(error: str, strategy: str, workers: int | None, fit_timeout: 
         raise UsageError(f"strategy={strategy!r} is not a strategy; use one of {', '.join(STRATEGIES)}")
     if criterion not in CRITERIA:
         raise UsageError(f"criterion={criterion!r} is not a criterion; use one of {', '.join(CRITERIA)}")
+    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+        raise UsageError(f"seed={seed!r} must be a whole number ≥ 0")
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
         raise UsageError(f"workers={workers!r} must be a whole number ≥ 1")
     if fit_timeout is not None and (isinstance(fit_timeout, bool) or not isinstance(fit_timeout, (int, float))
@@ -258,6 +260,13 @@ def run_cohort(
         Invalid options, unknown subjects, or a run directory that cannot be used as
         asked. Fits that fail never raise: they are failed results with the reason.
 
+    Notes
+    -----
+    Worker processes start from a clean server process (``forkserver``; ``spawn`` where
+    that is missing) and import the main module again, so a script that runs a cohort
+    with ``workers > 1`` keeps its top-level work under ``if __name__ == "__main__":``.
+    Fits whose worker crashed are tried once more in a fresh pool, then recorded as failed.
+
     Examples
     --------
     >>> import numpy as np, pandas as pd
@@ -270,7 +279,7 @@ def run_cohort(
     >>> [f.status for f in cohort.fits], cohort.n_failed
     (['ok', 'ok'], 0)
     """
-    _check_options(error, strategy, workers, fit_timeout, criterion, bootstrap, run_dir, resume)
+    _check_options(error, strategy, seed, workers, fit_timeout, criterion, bootstrap, run_dir, resume)
     tmpl = _templates(templates)
     chosen = _subjects(study, subjects)
     restricted = _per_template(tmpl, fixed, estimate)

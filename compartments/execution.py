@@ -58,6 +58,8 @@ THREAD_VARIABLES = ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS"
 MAX_ATTEMPTS = 2
 #: Seconds added to twice the time limit before a pool worker is stopped from outside.
 HARD_GRACE = 5.0
+#: How long to try to reach a Dask scheduler before giving up.
+CONNECT_TIMEOUT = "20s"
 #: Seconds between repeats of a stop that has not yet taken effect.
 REPEAT = 0.05
 
@@ -431,7 +433,8 @@ def execute(tasks: Sequence[Task], on_outcome: OutcomeCallback, *, workers: int 
         How the tasks ran: ``"serial"``, ``"processes"`` or ``"dask"``.
     """
     if scheduler is not None:
-        _execute_dask(tasks, on_outcome, scheduler, fn)
+        if tasks:
+            _execute_dask(tasks, on_outcome, scheduler, fn)
         return "dask"
     if workers <= 1 or len(tasks) <= 1:
         for task in tasks:
@@ -548,7 +551,7 @@ def _execute_dask(tasks: Sequence[Task], on_outcome: OutcomeCallback, scheduler:
     distributed = _dask()
     address = getattr(scheduler, "scheduler_address", scheduler)
     try:
-        client = distributed.Client(address, timeout="20s")
+        client = distributed.Client(address, timeout=CONNECT_TIMEOUT)
     except (OSError, TimeoutError, ValueError) as exc:
         raise UsageError(
             f"cannot reach the Dask scheduler at {address}: {one_line(exc)}; start one with "

@@ -8,7 +8,7 @@ Areas
     AUC and AUMC are integrated with Gauss–Legendre quadrature over the dosing history,
     split at every dose (after any lag) and infusion end, on sub-intervals that widen
     geometrically away from each break, out to a horizon where the curve has fallen below
-    1e-9 of its peak; the remainder is added as ``C(T)/λ`` (and ``T·C(T)/λ + C(T)/λ²``
+    1e-6 of its peak; the remainder is added as ``C(T)/λ`` (and ``T·C(T)/λ + C(T)/λ²``
     for the first moment) with λ the curve's log-slope at the horizon. MRT = AUMC/AUC
     measured from the first dose, less half the infusion duration for an infusion (the
     same convention as :mod:`compartments.nca`).
@@ -32,16 +32,20 @@ from numpy.typing import NDArray
 from scipy import stats
 from scipy.optimize import minimize_scalar
 
+from .errors import CompartmentsError
+
 Array = NDArray[np.float64]
 
 __all__ = ["Curve", "Exposure", "curve_exposure", "exposure", "fitted_curve"]
 
 #: The horizon is pushed out until the curve is below this fraction of its peak.
-DECAY_FRACTION = 1e-9
+DECAY_FRACTION = 1e-6
 #: Gauss–Legendre nodes per sub-interval and geometric sub-intervals per segment.
 GL_NODES = 8
 SUBINTERVALS = 24
-MAX_DOUBLINGS = 40
+#: The horizon grows by this factor until the curve has decayed (at most MAX_GROWTH_STEPS times).
+GROWTH = 1.25
+MAX_GROWTH_STEPS = 160
 
 _GL_X, _GL_W = np.polynomial.legendre.leggauss(GL_NODES)
 
@@ -174,22 +178,23 @@ def curve_exposure(
     notes: list[str] = []
     b = sorted({float(x) for x in breaks if np.isfinite(x)} | {float(origin)})
     first, last_break = b[0], b[-1]
-    horizon = max(float(last_time), last_break + 1e-9)
-    step = max(horizon - last_break, last_break - first, 1.0)
+    step = max(float(last_time) - last_break, last_break - first, 1e-6 * max(abs(last_break), 1.0))
+    with np.errstate(all="ignore"):
+        coarse = np.asarray(conc(np.linspace(first, last_break + step, 64)[1:]), dtype=float)
+    peak = float(np.nanmax(np.abs(coarse))) if np.any(np.isfinite(coarse)) else 0.0
     decays = False
-    peak = 0.0
-    for _ in range(MAX_DOUBLINGS):
-        horizon = last_break + step
-        probe = last_break + step * np.array([0.25, 0.5, 0.9, 0.95, 1.0])
+    pair = (float("nan"), float("nan"))
+    for _ in range(MAX_GROWTH_STEPS):
         with np.errstate(all="ignore"):
-            c = np.asarray(conc(probe), dtype=float)
-        peak = max(peak, float(np.nanmax(np.abs(c))) if np.any(np.isfinite(c)) else 0.0)
+            c = np.asarray(conc(last_break + step * np.array([0.95, 1.0])), dtype=float)
         if not np.all(np.isfinite(c)):
             break
-        if c[-1] <= 0.0 or (c[-1] < c[-2] <= c[-3] and c[-1] <= DECAY_FRACTION * peak):
-            decays = True
+        peak = max(peak, float(np.max(np.abs(c))))
+        if c[1] <= 0.0 or (c[1] < c[0] and c[1] <= DECAY_FRACTION * peak):
+            decays, pair = True, (float(c[0]), float(c[1]))
             break
-        step *= 2.0
+        step *= GROWTH
+    horizon = last_break + step
     edges = b + [horizon]
     nodes_l, weights_l = [], []
     for a, z in zip(edges[:-1], edges[1:], strict=True):
@@ -229,13 +234,10 @@ def curve_exposure(
     aumc: float | None = float(np.sum(weights * (nodes - origin) * cv))
     lam: float | None = None
     if decays:
-        dt = 0.05 * step
-        with np.errstate(all="ignore"):
-            c1, c2 = np.asarray(conc(np.array([horizon - dt, horizon])), dtype=float)
-        if c1 > 0 and c2 > 0 and c2 < c1:
-            lam = float(math.log(c1 / c2) / dt)
-            tail = c2 / lam
-            auc += tail  # type: ignore[operator]
+        c1, c2 = pair
+        if c1 > 0 and c2 > 0:
+            lam = float(math.log(c1 / c2) / (0.05 * step))
+            auc += c2 / lam  # type: ignore[operator]
             aumc += (horizon - origin) * c2 / lam + c2 / lam**2  # type: ignore[operator]
     else:
         notes.append("The fitted curve does not fall towards zero after the last dose, so AUC0–∞, MRT and "
@@ -248,7 +250,12 @@ def curve_exposure(
         else:
             notes.append("MRT is given for a single dose only.")
     half = math.log(2) / lam if lam else None
-    return Exposure(observable, unit, time_unit, auc, aumc, cmax, tmax - origin, mrt, lam, half, tuple(notes))
+
+    def plain(x: float | None) -> float | None:
+        return None if x is None else float(x)
+
+    return Exposure(observable, unit, time_unit, plain(auc), plain(aumc), float(cmax), float(tmax - origin),
+                    plain(mrt), plain(lam), plain(half), tuple(notes))
 
 
 def _subject_key(result: Any, subject: str | None) -> str | None:
@@ -321,8 +328,14 @@ def exposure(result: Any, subject: str | None = None, observable: str | None = N
 
     single = len(doses) == 1
     dur = doses[0].infusion_duration if single and doses[0].route == "infusion" else 0.0
-    return curve_exposure(conc, breaks, origin=float(doses[0].time), last_time=float(last_time), single_dose=single,
-                          infusion_duration=dur, observable=obs, unit=unit, time_unit=t.time_unit)
+    try:
+        return curve_exposure(conc, breaks, origin=float(doses[0].time), last_time=float(last_time),
+                              single_dose=single, infusion_duration=dur, observable=obs, unit=unit,
+                              time_unit=t.time_unit)
+    except CompartmentsError as exc:  # e.g. the integrator fails far beyond the samples
+        nan = float("nan")
+        return Exposure(obs, unit, t.time_unit, None, None, nan, nan, None, None, None,
+                        (f"Exposure could not be read off the fitted curve: {exc}",))
 
 
 def working_scale_gradient(result: Any, times: Array, subject: str | None, observable: str | None) -> Array:

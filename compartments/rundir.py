@@ -127,16 +127,18 @@ class RunDirectory:
         self.templates = {name: template_digest(t) for name, t in templates.items()}
         self.fits = self.path / "fits"
         info = self.path / "run.json"
-        self._saved_templates: dict[str, str] = {}
+        self._saved: dict[str, Any] = {}
         if resume:
             self._check_resume(info)
         else:
             self._check_new(info)
+        now = datetime.now(UTC).isoformat(timespec="seconds")
         record = {
             "schema": SCHEMA,
-            "created": datetime.now(UTC).isoformat(timespec="seconds"),
+            "created": self._saved.get("created", now),
+            "resumed": [*self._saved.get("resumed", []), now] if resume else [],
             "settings": self.settings,
-            "templates": {**self._saved_templates, **self.templates},
+            "templates": {**self._saved.get("templates", {}), **self.templates},
             "study": _canonical(dict(study or {})),
         }
         self.fits.mkdir(exist_ok=True)
@@ -177,7 +179,8 @@ class RunDirectory:
         if changed:
             raise UsageError(f"{self.path}: template {', '.join(changed)} differs from the one the run used; "
                              "resume with the same template files or start a new run directory")
-        self._saved_templates = old_templates
+        self._saved = {"created": saved.get("created"), "resumed": list(saved.get("resumed", [])),
+                       "templates": old_templates}
 
     def load(self, task: Task, digest: str) -> FitResult | None:
         """The saved result of ``task`` if it finished for good, else None.

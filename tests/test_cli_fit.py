@@ -100,6 +100,16 @@ class TestFit:
         failed = {f["subject"]: f for f in doc["fits"] if f["status"] == "failed"}
         assert "b" in failed and "cannot determine the 5 parameters" in failed["b"]["message"]
 
+    def test_markdown_alone_gets_a_plot_folder(self, theoph_csv: Path, tmp_path: Path, capsys) -> None:
+        """--report without --out puts the plots in FILE_plots/ beside it and links them from there."""
+        md = tmp_path / "notes.md"
+        assert run(["fit", theoph_csv, "--model", "one-comp-oral", "--subject", "5", *BASE, "--quiet",
+                    "--report", md, "--title", "Theoph subject 5"]) == 0
+        text = md.read_text(encoding="utf-8")
+        assert text.startswith("# Theoph subject 5")
+        assert "(notes_plots/subject_5.png)" in text and (tmp_path / "notes_plots" / "subject_5.png").is_file()
+        assert sorted(p.name for p in tmp_path.iterdir()) == ["notes.md", "notes_plots"]
+
     def test_quiet(self, theoph_csv: Path, capsys) -> None:
         """--quiet: no parameter tables, no progress, but the cautions."""
         code = run(["fit", theoph_csv, "--model", "one-comp-oral", "--subject", "3", *BASE, "--quiet"])

@@ -298,11 +298,19 @@ class TestExecution:
         b = run_cohort(small, ["one-comp-oral"], workers=2, **kw)
         assert all(f.ok for f in a.fits) and same_results(a, b)
 
-    def test_missing_distributed_is_a_clear_error(self, monkeypatch):
+    def test_unreachable_scheduler_is_a_clear_error(self, small, monkeypatch):
+        """A scheduler address nobody answers at is one line with the remedy."""
+        pytest.importorskip("distributed")
+        monkeypatch.setattr(execution, "CONNECT_TIMEOUT", "1s")
+        with pytest.raises(UsageError, match="cannot reach the Dask scheduler at tcp://127.0.0.1:9.*dask scheduler"):
+            run_cohort(small, ["one-comp-oral"], strategy="nls", subjects=["s00"], scheduler="tcp://127.0.0.1:9")
+
+    def test_missing_distributed_is_a_clear_error(self, small, monkeypatch):
         """Without the distributed package a scheduler address is refused with the remedy."""
         monkeypatch.setitem(sys.modules, "distributed", None)
+        task = Task.from_subjects([small["s00"]], load_template("one-comp-oral"), {"strategy": "nls", "seed": 1})
         with pytest.raises(UsageError, match=r"compartments\[cluster\]"):
-            execute([], lambda o: None, scheduler="tcp://127.0.0.1:8786")
+            execute([task], lambda o: None, scheduler="tcp://127.0.0.1:8786")
 
 
 class TestResume:
@@ -449,6 +457,7 @@ class TestOptions:
         """Bad options are refused before any fit, with one line saying what to do."""
         cases = [
             (dict(workers=0), "workers=0"),
+            (dict(seed=-1), "seed=-1"),
             (dict(fit_timeout=-1), "fit_timeout=-1"),
             (dict(subjects=["nope"]), "no subject 'nope'"),
             (dict(fixed={"kx": 1.0}), "'kx' is in none of the templates"),

@@ -93,6 +93,16 @@ class TestTextbookIdentities:
         assert e.mrt == pytest.approx((1 + k12 / k21) / k10, rel=1e-6)
         assert e.half_life == pytest.approx(math.log(2) / beta, rel=1e-5)
 
+    @pytest.mark.parametrize("dose", [100.0, 2000.0])
+    def test_michaelis_menten_bolus(self, dose: float) -> None:
+        """Michaelis–Menten elimination after an IV bolus: AUC0–∞ = C0·(C0/2 + Km)/(Vmax/V), and
+        the terminal (first-order) rate is Vmax/(V·Km) (Wagner 1973; Gibaldi & Perrier 1982, ch. 7)."""
+        vmax, km, V = 20.0, 5.0, 40.0
+        e = exposure(result_for("one-comp-mm", {"Vmax": vmax, "Km": km, "V": V}, [Dose(0, dose, "iv")]))
+        c0 = dose / V
+        assert e.auc_inf == pytest.approx(c0 * (c0 / 2 + km) / (vmax / V), rel=1e-6)
+        assert e.lambda_z == pytest.approx(vmax / (V * km), rel=1e-3)
+
     def test_lag_time_shifts_tmax_only(self) -> None:
         """A lag shifts the curve: Tmax grows by tlag, AUC is unchanged, MRT grows by tlag
         (Gibaldi & Perrier 1982, ch. 1)."""

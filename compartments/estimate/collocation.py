@@ -162,6 +162,8 @@ class Layout:
     Pd: Array  # (nd, M) features at each data row (zeros for rows before any piece)
     events_at: list[list[_Event]]  # events applied at each piece start
     active: list[list[_Event]]  # events whose rate is in force during each piece
+    node_weight: Array  # (P, K): 1/envelope at the nodes (amount states)
+    start_weight: Array  # (P,): 1/envelope at each piece start
 
     @property
     def n_pieces(self) -> int:
@@ -285,6 +287,31 @@ class _Subject:
         self._layout: Layout | None = None
         self._layout_key: tuple[float, ...] | None = None
 
+    def envelope(self, t: Array) -> Array:
+        """Typical size of the amount states at times ``t``, as a fraction of the scale.
+
+        Under a relative error model the data constrain small late concentrations as
+        tightly as the peak, so the ODE residual of amount states is measured relative to
+        the size of the solution there: the observations of each observable, normalised
+        to their maximum and interpolated log-linearly in time (constant beyond the
+        first and last), the largest over observables, floored. Under additive error the
+        envelope is 1 (absolute residuals throughout).
+        """
+        error = self.o.problem.error
+        if error == "additive" or not self.nd:
+            return np.ones_like(t)
+        floor = 1e-4 if error in ("proportional", "lognormal") else 0.05
+        env = np.full(t.shape, floor)
+        for k in np.unique(self.oi):
+            sel = (self.oi == k) & (np.abs(self.y) > 0)
+            if not sel.any():
+                continue
+            tt, yy = self.t[sel], np.abs(self.y[sel])
+            order = np.argsort(tt, kind="stable")
+            tt, yy = tt[order], np.log(yy[order] / yy.max())
+            env = np.maximum(env, np.exp(np.interp(t, tt, yy)))
+        return env
+
     # -- layout ---------------------------------------------------------------------------
     def events(self, theta: Array) -> list[_Event]:
         m = self.o.model
@@ -315,6 +342,7 @@ class _Subject:
         tmax = float(self.t.max()) if self.nd else 0.0
         cuts = sorted({0.0} | {e.time for e in evs if e.time < tmax})
         starts, stops, dtds_rows = [], [], []
+        node_times: list[Array] = []
         piece_of_row = np.full(self.nd, -1, dtype=np.int64)
         s_of_row = np.zeros(self.nd)
         events_at: list[list[_Event]] = []
@@ -339,6 +367,7 @@ class _Subject:
                 starts.append(a + ua)
                 stops.append(a + ub)
                 dtds_rows.append(du_dtau * 0.5 * (tb - ta))
+                node_times.append(a + u_nodes)
                 q_rows = np.clip(np.ceil(tau_rows * n_pieces).astype(np.int64) - 1, 0, n_pieces - 1)
                 sel = rows[q_rows == q]
                 piece_of_row[sel] = pidx
@@ -358,6 +387,8 @@ class _Subject:
             Pd=Pd,
             events_at=events_at,
             active=active,
+            node_weight=1.0 / self.envelope(np.asarray(node_times).reshape(len(starts), o.K)),
+            start_weight=1.0 / self.envelope(np.asarray(starts)),
         )
         self._layout, self._layout_key = lay, key
         return lay
@@ -451,7 +482,9 @@ class _Subject:
             div = S
         f, fx, fp = self._rhs(X.reshape(n, P * K), ctx, want_jz, want_jt)
         rate = f.reshape(n, P, K) + ctx.u.T[:, :, None]
-        r[:n_phys] = (wp * (D - lay.dtds[None] * rate / div)).reshape(-1)
+        # per-node weights: relative (envelope) for amount states, 1 for log states
+        pw = wp * np.where(lg[:, None, None], 1.0, lay.node_weight[None])  # (n, P, K)
+        r[:n_phys] = (pw * (D - lay.dtds[None] * rate / div)).reshape(-1)
         if want_jz:
             assert Jz is not None and fx is not None
             fx4 = fx.reshape(n, n, P, K)
@@ -461,10 +494,10 @@ class _Subject:
                     A[i, i] = A[i, i] - rate[i] / X[i]
             else:
                 A = fx4
-            T = np.einsum("ilqk,km->qikml", -wp * A * lay.dtds[None, None], o.Pc)  # (P, n, K, M, n)
+            T = np.einsum("ilqk,km->qikml", -pw[:, None] * A * lay.dtds[None, None], o.Pc)  # (P, n, K, M, n)
             T = np.ascontiguousarray(T.transpose(0, 1, 2, 4, 3))  # (P, i, K, l, M)
             for i in range(n):
-                T[:, i, :, i, :] += wp * o.dPc[None]
+                T[:, i, :, i, :] += pw[i][:, :, None] * o.dPc[None]
             J4 = Jz[:n_phys].reshape(n, P, K, P, nM)
             Tq = T.reshape(P, n, K, nM)
             for q in range(P):
@@ -473,7 +506,7 @@ class _Subject:
             assert Jt is not None and fp is not None
             ft = fp.reshape(n, p, P, K) + ctx.du.transpose(1, 2, 0)[:, :, :, None]
             dv = div[:, None] if any_log else div
-            Jt[:n_phys] = (-wp * lay.dtds[None, None] * ft / dv).transpose(0, 2, 3, 1).reshape(n_phys, p)
+            Jt[:n_phys] = (-pw[:, None] * lay.dtds[None, None] * ft / dv).transpose(0, 2, 3, 1).reshape(n_phys, p)
 
         # initial conditions, jumps, continuity ----------------------------------------------
         row = n_phys
@@ -483,21 +516,22 @@ class _Subject:
         ref[0] = np.where(lg, np.log(safe), start / S)
         if P > 1:
             ref[1:] = W[:-1] @ o.Pend + np.where(lg, 0.0, ctx.jump[1:] / S)
-        r[row:row + n_cont] = (wc * (W[:, :, 0] - ref)).reshape(-1)
+        cw = wc * np.where(lg[None, :], 1.0, lay.start_weight[:, None])  # (P, n)
+        r[row:row + n_cont] = (cw * (W[:, :, 0] - ref)).reshape(-1)
         if want_jz:
             assert Jz is not None
             idx = np.arange(P * n)
-            Jz[row + idx, idx * M] = wc
+            Jz[row + idx, idx * M] = cw.reshape(-1)
             for q in range(1, P):
                 for i in range(n):
                     c0 = ((q - 1) * n + i) * M
-                    Jz[row + q * n + i, c0:c0 + M] = -wc * o.Pend
+                    Jz[row + q * n + i, c0:c0 + M] = -cw[q, i] * o.Pend
         if want_jt:
             assert Jt is not None and ctx.x0p is not None
             d0 = ctx.x0p + ctx.djump[0]
-            Jt[row:row + n] = -wc * np.where(lg[:, None], d0 / safe[:, None], d0 / S)
+            Jt[row:row + n] = -cw[0][:, None] * np.where(lg[:, None], d0 / safe[:, None], d0 / S)
             if P > 1:
-                Jt[row + n:row + n_cont] = (-wc * np.where(lg[None, :, None], 0.0, ctx.djump[1:] / S)).reshape(-1, p)
+                Jt[row + n:row + n_cont] = (-cw[1:, :, None] * np.where(lg[None, :, None], 0.0, ctx.djump[1:] / S)).reshape(-1, p)
         row += n_cont
 
         # data ---------------------------------------------------------------------------

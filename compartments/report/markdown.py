@@ -81,6 +81,9 @@ def _fit_section(f: Any, checks: CrossChecks, level: str = "###") -> list[str]:
             rows.append(row)
         out.append(md_table(cols, rows, [False, True] + ([True] if nca is not None else []) + [False]))
         out.append("")
+        notes = list(e.notes) + ([f"NCA: {n}" for n in nca.notes] if nca is not None else [])
+        if notes:
+            out += [f"- _{n}_" for n in notes] + [""]
     r = f.residuals
     n_cens = int(r.censored.sum()) if r is not None else 0
     out.append(f"**Fit quality:** {f.n_obs} observations{f' ({n_cens} below LLOQ)' if n_cens else ''}; "

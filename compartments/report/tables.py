@@ -10,7 +10,7 @@ Examples
 >>> from rich.console import Console
 >>> console = Console(file=StringIO(), width=100)
 >>> console.print(cautions_panel())
->>> "not clinical dosing advice" in console.file.getvalue()
+>>> "Not clinical dosing advice" in console.file.getvalue()
 True
 """
 
@@ -201,7 +201,7 @@ def derived_table(result: Any) -> Table | None:
     return t
 
 
-def exposure_table(e: Exposure, nca: NCAResult | None = None) -> Table:
+def exposure_table(e: Exposure, nca: NCAResult | None = None) -> Group:
     """Exposure read off the fitted curve, with the NCA value beside it when available."""
     t = _table("Exposure from the fitted curve")
     t.add_column("quantity")
@@ -218,7 +218,10 @@ def exposure_table(e: Exposure, nca: NCAResult | None = None) -> Table:
             row.append(fmt(nca_vals.get(key)))
         row.append(d[key]["unit"])
         t.add_row(*row)
-    return t
+    notes = list(e.notes) + ([f"NCA: {n}" for n in nca.notes] if nca is not None else [])
+    if not notes:
+        return Group(t)
+    return Group(t, Text("\n".join(notes), style="dim"))
 
 
 def quality_line(result: Any) -> Text:
