@@ -29,6 +29,10 @@ def atomic_path(path: str | os.PathLike[str]) -> Iterator[Path]:
     fd, name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent or ".")
     os.close(fd)
     tmp = Path(name)
+    # mkstemp creates 0600; give the file the permissions an ordinary open() would
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o666 & ~umask)
     try:
         yield tmp
         os.replace(tmp, target)

@@ -86,6 +86,7 @@ class FitResult:
     strategy: str
     versions: Mapping[str, str]
     wall_time: float
+    log_scale: Mapping[str, bool] = field(default_factory=dict)  # estimated on the log scale
     alternatives: tuple[Mapping[str, float], ...] = ()
     profiles: Mapping[str, Any] = field(default_factory=dict)
     bootstrap: Mapping[str, Any] = field(default_factory=dict)

@@ -232,6 +232,33 @@ def _apply(model: Model, theta: Array, x: Array, S: Array | None, u: Array, uS: 
     return x, S, u, uS
 
 
+def _propagate(big: Array, N: int, z0: Array, taus: Array) -> Array:
+    """States at offsets ``taus`` (sorted) from ``z0`` under ``dz/dt = M z + c`` (augmented).
+
+    Few offsets: one batched matrix exponential. Many offsets (a fine grid): step from
+    one to the next, reusing the exponential of each distinct step (a uniform grid needs
+    one), by the semigroup property e^{M(a+b)} = e^{Ma} e^{Mb}.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        if taus.size <= 16:
+            E = expm(big[None, :, :] * taus[:, None, None])  # (K, N+1, N+1)
+            return E[:, :N, :N] @ z0 + E[:, :N, N]
+        steps = np.diff(np.r_[0.0, taus])
+        scale = max(float(taus[-1]), 1e-300)
+        keys = np.round(steps / scale, 12)
+        uniq, inverse = np.unique(keys, return_inverse=True)
+        reps = {}
+        for j in range(uniq.size):
+            first = int(np.flatnonzero(inverse == j)[0])
+            reps[j] = expm(big * steps[first])
+        out = np.empty((taus.size, N))
+        z = np.r_[z0, 1.0]
+        for i in range(taus.size):
+            z = reps[int(inverse[i])] @ z
+            out[i] = z[:N]
+        return out
+
+
 def _solve_expm(model: Model, theta: Array, events: list[_Event], t: Array, sens: bool,
                 rtol: float, atol: float | None) -> tuple[Array, Array | None]:
     n, p = model.n_states, model.n_params
@@ -273,8 +300,7 @@ def _solve_expm(model: Model, theta: Array, events: list[_Event], t: Array, sens
             for j in range(p):
                 big[n * (j + 1): n * (j + 2), N] = cS[:, j]
         z0 = np.concatenate([x, S.T.reshape(-1)]) if sens else x
-        E = expm(big[None, :, :] * all_taus[:, None, None])  # (K, N+1, N+1)
-        Z = E[:, :N, :N] @ z0 + E[:, :N, N]
+        Z = _propagate(big, N, z0, all_taus)
         for i in range(taus.size):
             idx = order[k + i]
             X[idx] = Z[i, :n]

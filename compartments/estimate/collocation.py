@@ -40,7 +40,8 @@ Devices (see the measurements in :mod:`compartments.estimate.pinn`):
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import weakref
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -204,7 +205,8 @@ class Collocation:
             r.lag_index is not None and r.lag_index in set(problem.free) for r in m.routes.values()
         )
         self.dose_states = {r.state_index for r in m.routes.values()}
-        self.obs_linear = _observables_linear(m)
+        self.gains = _gains(m)
+        self.obs_linear = self.gains.linear
         self.linear = bool(m.is_linear and self.obs_linear)
         self.subjects = [_Subject(self, d) for d in problem.data]
 
@@ -246,20 +248,55 @@ class Collocation:
         return float(r @ r), r, J, zs
 
 
-def _observables_linear(model: Model) -> bool:
-    """True when every observable is affine in the states (checked symbolically)."""
+@dataclass(frozen=True)
+class _Gains:
+    """Squared state-to-observable gains ``h_o(θ) = Σ_i (∂g_o/∂x_i)²`` and their gradients.
+
+    Only built when every observable is affine in the states (then the gains do not
+    depend on the states).
+    """
+
+    linear: bool
+    h: Callable[..., Array] | None = None  # θ -> (m, 1)
+    dh: Callable[..., Array] | None = None  # θ -> (m, p)
+
+
+_GAINS: weakref.WeakKeyDictionary[Model, _Gains] = weakref.WeakKeyDictionary()
+
+
+def _gains(model: Model) -> _Gains:
+    """Compile (once per model) whether the observables are affine and their gains."""
+    found = _GAINS.get(model)
+    if found is not None:
+        return found
     import sympy as sp
 
-    by_name = {n: sp.Symbol(n, real=True) for n in model.state_names}
-    xs = list(by_name.values())
+    xs = {n: sp.Symbol(n, real=True) for n in model.state_names}
+    ps = [sp.Symbol(n, real=True) for n in model.parameter_names]
+    by_name = {**xs, **{q.name: q for q in ps}}
+    rows = []
+    linear = True
     for o in model.template.observables:
         e = o.expression
         e = e.xreplace({q: by_name[q.name] for q in e.free_symbols if q.name in by_name})
-        for a in xs:
-            for b in xs:
-                if sp.simplify(sp.diff(e, a, b)) != 0:
-                    return False
-    return True
+        grads = [sp.diff(e, x) for x in xs.values()]
+        if any(g.free_symbols & set(xs.values()) for g in grads):
+            linear = False
+            break
+        rows.append(sum((g**2 for g in grads), sp.Integer(0)))
+    if not linear:
+        out = _Gains(False)
+    else:
+        h = sp.lambdify(ps, [[r] for r in rows], modules="numpy")
+        dh = sp.lambdify(ps, [[sp.diff(r, q) for q in ps] for r in rows], modules="numpy")
+        n_obs, n_par = len(rows), len(ps)
+        out = _Gains(
+            True,
+            lambda *t: np.array(h(*t), dtype=float).reshape(n_obs, 1),
+            lambda *t: np.array(dh(*t), dtype=float).reshape(n_obs, n_par),
+        )
+    _GAINS[model] = out
+    return out
 
 
 class _Subject:
@@ -276,6 +313,9 @@ class _Subject:
         self.doses: tuple[Dose, ...] = tuple(data.doses)  # type: ignore[attr-defined]
         self.nd = int(self.y.size)
         self.sigma = _data_scale(self.y, self.oi, owner.problem.error, len(m.observable_names))
+        seen = [k for k in range(len(m.observable_names)) if np.any((self.oi == k) & (self.y != 0))]
+        self.obs_seen = np.asarray(seen, dtype=np.int64)
+        self.ymax = np.array([np.max(np.abs(self.y[self.oi == k])) for k in seen], dtype=float)
         # common amount scale (θ-independent so the loss does not favour large states)
         x0 = np.abs(m.initial(m.defaults))
         total = sum(float(d.amount) for d in self.doses)
@@ -426,7 +466,31 @@ class _Subject:
         x0 = m.initial(theta)
         x0p = m.initial_jac(theta).reshape(n, p) if want_grad else None
         lin = m.linear_parts(theta) if m.is_linear else None
-        return _Context(theta, weight, u, jump, du, djump, x0, x0p, lin)
+        gamma, dgamma = self.gain(theta, want_grad)
+        return _Context(theta, weight, u, jump, du, djump, x0, x0p, lin, gamma, dgamma)
+
+    def gain(self, theta: Array, want_grad: bool) -> tuple[float, Array]:
+        """Factor turning an amount-state residual into data units, and its θ-gradient.
+
+        ``γ(θ) = sqrt(Σ_o h_o(θ) / ymax_o²) · S``: the size, relative to the data, of a unit
+        of the scaled states as the observables see it (``1/V`` for a concentration). An
+        ODE residual that would not move the observables by much is cheap otherwise, and
+        a small volume would let the trajectory bend the physics at no cost. Nonlinear
+        observables use ``γ = 1``.
+        """
+        p = self.o.model.n_params
+        g = self.o.gains
+        if not g.linear or not self.ymax.size:
+            return 1.0, np.zeros(p)
+        assert g.h is not None and g.dh is not None
+        h = g.h(*theta)[self.obs_seen, 0]
+        w = 1.0 / self.ymax**2
+        tot = float(np.sum(w * h))
+        if not (tot > 0 and np.isfinite(tot)):
+            return 1.0, np.zeros(p)
+        gamma = np.sqrt(tot) * self.scale
+        dgamma = (w @ g.dh(*theta)[self.obs_seen]) * self.scale**2 / (2.0 * gamma) if want_grad else np.zeros(p)
+        return float(gamma), dgamma
 
     def _rhs(self, X: Array, ctx: _Context, want_fx: bool, want_fp: bool
              ) -> tuple[Array, Array | None, Array | None]:
@@ -483,7 +547,8 @@ class _Subject:
         f, fx, fp = self._rhs(X.reshape(n, P * K), ctx, want_jz, want_jt)
         rate = f.reshape(n, P, K) + ctx.u.T[:, :, None]
         # per-node weights: relative (envelope) for amount states, 1 for log states
-        pw = wp * np.where(lg[:, None, None], 1.0, lay.node_weight[None])  # (n, P, K)
+        gam = ctx.gamma
+        pw = wp * np.where(lg[:, None, None], 1.0, gam * lay.node_weight[None])  # (n, P, K)
         r[:n_phys] = (pw * (D - lay.dtds[None] * rate / div)).reshape(-1)
         if want_jz:
             assert Jz is not None and fx is not None
@@ -507,6 +572,9 @@ class _Subject:
             ft = fp.reshape(n, p, P, K) + ctx.du.transpose(1, 2, 0)[:, :, :, None]
             dv = div[:, None] if any_log else div
             Jt[:n_phys] = (-pw[:, None] * lay.dtds[None, None] * ft / dv).transpose(0, 2, 3, 1).reshape(n_phys, p)
+            if not lg.all() and np.any(ctx.dgamma):
+                amount_rows = np.repeat(~lg, P * K)
+                Jt[:n_phys][amount_rows] += np.outer(r[:n_phys][amount_rows], ctx.dgamma / gam)
 
         # initial conditions, jumps, continuity ----------------------------------------------
         row = n_phys
@@ -516,7 +584,7 @@ class _Subject:
         ref[0] = np.where(lg, np.log(safe), start / S)
         if P > 1:
             ref[1:] = W[:-1] @ o.Pend + np.where(lg, 0.0, ctx.jump[1:] / S)
-        cw = wc * np.where(lg[None, :], 1.0, lay.start_weight[:, None])  # (P, n)
+        cw = wc * np.where(lg[None, :], 1.0, gam * lay.start_weight[:, None])  # (P, n)
         r[row:row + n_cont] = (cw * (W[:, :, 0] - ref)).reshape(-1)
         if want_jz:
             assert Jz is not None
@@ -532,6 +600,9 @@ class _Subject:
             Jt[row:row + n] = -cw[0][:, None] * np.where(lg[:, None], d0 / safe[:, None], d0 / S)
             if P > 1:
                 Jt[row + n:row + n_cont] = (-cw[1:, :, None] * np.where(lg[None, :, None], 0.0, ctx.djump[1:] / S)).reshape(-1, p)
+            if not lg.all() and np.any(ctx.dgamma):
+                amount_rows = np.tile(~lg, P)
+                Jt[row:row + n_cont][amount_rows] += np.outer(r[row:row + n_cont][amount_rows], ctx.dgamma / gam)
         row += n_cont
 
         # data ---------------------------------------------------------------------------
@@ -660,6 +731,8 @@ class _Context:
     x0: Array  # (n,)
     x0p: Array | None  # (n, p)
     linear: tuple[Array, Array, Array, Array] | None  # A, b, dA/dθ, db/dθ of a linear model
+    gamma: float  # amount residual -> data units
+    dgamma: Array  # (p,)
 
 
 def _data_scale(y: Array, oi: NDArray[np.int64], error: str, n_obs: int) -> Array:

@@ -353,6 +353,7 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
         bic=float(bic), n_obs=n, n_params=k_total, residuals=residuals, derived=derived,
         stages=stages, warnings=tuple(warnings), seed=seed, strategy=strategy, versions=_versions(),
         wall_time=time.perf_counter() - t_start, alternatives=(twin,) if twin else (),
+        log_scale={n: bool(v) for n, v in zip(names, problem.log_mask)},
         profiles=profiles, bootstrap=boot,
         doses={d.id: d.doses for d in problem.data}, model_template=template,
     )

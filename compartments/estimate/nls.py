@@ -42,6 +42,19 @@ def is_plain_least_squares(problem: Problem) -> bool:
     )
 
 
+def profiled_form(problem: Problem) -> str | None:
+    """The least-squares form that *is* maximum likelihood with the error SD profiled out.
+
+    ``"ols"`` (additive), ``"log"`` (log-normal: least squares on log values) and
+    ``"geometric"`` (proportional: residuals ``(y − f)·G/f`` with ``G`` the geometric mean of
+    the predictions, since ``n·log(Σ((y−f)/f)²/n) + 2Σ log f = n·log(Σ((y−f)·G/f)²/n)``), for
+    one observable without censoring; None otherwise (then reweighting and a joint polish).
+    """
+    if np.unique(problem.obs_index).size > 1 or bool(np.any(problem.censored)):
+        return None
+    return {"additive": "ols", "lognormal": "log", "proportional": "geometric"}.get(problem.error)
+
+
 @dataclass
 class _Cache:
     phi: Array | None = None
@@ -128,8 +141,14 @@ class LikelihoodStage:
         log = err == "lognormal"
         ly = np.log(np.maximum(y, floor)) if log else y
 
+        form = profiled_form(problem)
+        geometric = form == "geometric"
+
         def resid(p: Array) -> Array:
             f, _ = pred(p)
+            if geometric:
+                fc = np.maximum(f, floor)
+                return (y - f) * np.exp(np.mean(np.log(fc))) / fc
             ft = np.log(np.maximum(f, floor)) if log else f
             r = (ly - ft) / sd
             if np.any(cens):
@@ -138,6 +157,11 @@ class LikelihoodStage:
 
         def jac(p: Array) -> Array:
             f, J = pred(p)
+            if geometric:
+                fc = np.maximum(f, floor)
+                w = np.exp(np.mean(np.log(fc))) / fc
+                Jr = np.where((f > floor)[:, None], J / fc[:, None], 0.0)
+                return -w[:, None] * J + ((y - f) * w)[:, None] * (Jr.mean(axis=0)[None, :] - Jr)
             Jt = J / np.maximum(f, floor)[:, None] if log else J
             out = -Jt / sd[:, None]
             if np.any(cens):
@@ -151,7 +175,7 @@ class LikelihoodStage:
         msg = ""
         eta = np.zeros(n_kinds * n_error_parameters(err))
         prev = np.inf
-        rounds = 1 if is_plain_least_squares(problem) else self.reweight
+        rounds = 1 if form else self.reweight
         for _ in range(rounds):
             sol = least_squares(resid, phi, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
                                 xtol=self.tol, ftol=self.tol, gtol=self.tol, max_nfev=self.max_nfev)
@@ -162,14 +186,14 @@ class LikelihoodStage:
             f, _ = pred(phi)
             eta = initial_eta(err, y, f, k, cens, n_kinds, floor)
             obj = neg2ll(err, y, f, eta, k, cens, floor).value
-            if rounds == 1 or abs(prev - obj) <= 1e-10 * (1 + abs(obj)):
+            if rounds == 1 or abs(prev - obj) <= 1e-8 * (1 + abs(obj)):
                 break
             prev = obj
             sdv, _, _ = _sd(err, f, eta, k, floor)
             sd = np.maximum(sdv, 1e-300)
         f, _ = pred(phi)
         obj = neg2ll(err, y, f, eta, k, cens, floor).value
-        if not is_plain_least_squares(problem):
+        if not form:
             phi, eta, obj, it2 = self._polish(problem, phi, eta, obj, pred, floor)
             nit += it2
         if not np.isfinite(obj):
@@ -197,7 +221,7 @@ class LikelihoodStage:
         x0 = np.concatenate([phi, eta])
         bounds = list(zip(lo, hi)) + eb
         res = minimize(fg, x0, jac=True, method="L-BFGS-B", bounds=bounds,
-                       options={"maxiter": 500, "ftol": 1e-15, "gtol": 1e-10})
+                       options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-9})
         if np.isfinite(res.fun) and res.fun < obj:
             return res.x[:nphi], res.x[nphi:], float(res.fun), int(res.nit)
         return phi, eta, obj, int(res.nit)

@@ -133,9 +133,9 @@ def estimate_uncertainty(problem: Problem, phi: Array, eta: Array, level: float 
     theta = problem.to_theta_free(phi)
     logm = problem.log_mask
     se = np.where(logm, theta * se_phi, se_phi)
-    lo = np.where(logm, np.exp(phi - q * se_phi), phi - q * se_phi)
-    hi = np.where(logm, np.exp(phi + q * se_phi), phi + q * se_phi)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        lo = np.where(logm, np.exp(phi - q * se_phi), phi - q * se_phi)
+        hi = np.where(logm, np.exp(phi + q * se_phi), phi + q * se_phi)
         corr = cov / np.outer(se_phi, se_phi)
     return Uncertainty(cov_phi=cov, se=se, se_phi=se_phi, ci=np.column_stack([lo, hi]),
                        correlation=corr, df=df, quantile=q, method=method,

@@ -59,8 +59,12 @@ def _fit_section(f: Any, checks: CrossChecks, level: str = "###") -> list[str]:
             f"{n} = {fmt(v)} {t.parameter(n).unit if t is not None else ''}".rstrip() for n, v in f.fixed.items()))
         out.append("")
     if f.error_parameters:
-        out.append(f"**Error model ({f.error_model}):** " + ", ".join(
-            f"{n} = {fmt(v, 3)} {error_parameter_unit(n, f)}".rstrip() for n, v in f.error_parameters.items()))
+        items = []
+        for n, v in f.error_parameters.items():
+            unit = error_parameter_unit(n, f)
+            items.append(f"{n} = {fmt(v, 3)} ({fmt_pct(100 * v)} %)" if unit == "fraction"
+                         else f"{n} = {fmt(v, 3)} {unit}".rstrip())
+        out.append(f"**Error model ({f.error_model}):** " + ", ".join(items))
         out.append("")
     if f.derived:
         out.append(md_table(["derived quantity", "value", "unit", "SE", "meaning"],
@@ -113,7 +117,8 @@ def _cohort_tables(cohort: Any) -> list[str]:
             continue
         out += [f"### {model}: parameters across subjects", ""]
         frame = frame.reset_index()
-        cols = [str(c) for c in frame.columns]
+        labels = {"geo_mean": "geometric mean", "geo_cv_percent": "geometric CV %", "sd": "SD", "outlying": "outlying subjects"}
+        cols = [labels.get(str(c), str(c)) for c in frame.columns]
         rows = [[fmt(v) if isinstance(v, float) else v for v in rec] for rec in frame.itertuples(index=False)]
         out += [md_table(cols, rows), ""]
     return out
