@@ -13,6 +13,10 @@ Peak memory: the maximum resident set of the driving process (``resource.getrusa
 the high-water marks of every process below it (pool workers and the forkserver; Dask
 scheduler-side nannies and workers), read from /proc. The runs must give identical numbers.
 
+A control measures how much parallelism the machine offers at the time: a plain Python
+loop in one process and in two (before and after the runs); on a shared machine the
+cohort speed-up cannot beat it.
+
 With ``--null K``: K two-arm studies of 12 subjects with the *same* ke in both arms,
 fitted with one-comp-oral (nls); the Mann–Whitney p-values of ke should be roughly
 uniform (fraction below 0.05 near 5 %, Kolmogorov–Smirnov against uniform).
@@ -179,6 +183,30 @@ def _run(config: str, study, strategy: str, out: dict):
     return cohort
 
 
+def _spin(n: int) -> int:
+    total = 0
+    for i in range(n):
+        total += i * i % 7
+    return total
+
+
+def machine_parallelism(n: int = 3_000_000, k: int = 6) -> float:
+    """Speed-up of a plain Python loop in 2 processes over 1, right now (a control: on a
+    shared or busy machine the cohort speed-up cannot exceed it)."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    t0 = time.perf_counter()
+    for _ in range(k):
+        _spin(n)
+    one = time.perf_counter() - t0
+    with ProcessPoolExecutor(2) as ex:
+        list(ex.map(_spin, [1000, 1000]))  # start the workers first
+        t0 = time.perf_counter()
+        list(ex.map(_spin, [n] * k))
+        two = time.perf_counter() - t0
+    return one / two
+
+
 def null_check(k: int, workers: int) -> dict:
     """Mann–Whitney p-values of ke between two arms with no true difference, over k studies."""
     from scipy import stats
@@ -224,6 +252,9 @@ def main() -> None:
     print(f"cohort benchmark: {n} subjects × {len(MODELS)} models, strategy {args.strategy}, "
           f"{os.cpu_count()} cores, load average {info['load_before'][0]:.2f}", flush=True)
     results = []
+    info["control_speedup_before"] = machine_parallelism()
+    print(f"  control: a plain Python loop runs {info['control_speedup_before']:.2f}× faster in 2 processes "
+          "than in 1 on this machine now", flush=True)
     for config in [c.strip() for c in args.configs.split(",") if c.strip()]:
         cmd = [sys.executable, str(Path(__file__).resolve()), "--one", config, "--subjects", str(n),
                "--strategy", args.strategy]
@@ -240,9 +271,12 @@ def main() -> None:
               f"{r['children_total_mib']:.0f} MiB all children", flush=True)
     by = {r["config"]: r for r in results}
     summary: dict = {"info": info, "runs": results}
+    info["control_speedup_after"] = machine_parallelism()
+    info["load_after"] = os.getloadavg()
     if "1" in by and "2" in by:
         summary["speedup_2_workers"] = by["1"]["wall_s"] / by["2"]["wall_s"]
-        print(f"  speed-up with 2 workers: {summary['speedup_2_workers']:.2f}× (goal ≥ 1.7×)")
+        print(f"  speed-up with 2 workers: {summary['speedup_2_workers']:.2f}× (goal ≥ 1.7×; the control loop: "
+              f"{info['control_speedup_before']:.2f}× before, {info['control_speedup_after']:.2f}× after)")
     if "2" in by and "dask" in by:
         summary["dask_overhead"] = by["dask"]["wall_s"] / by["2"]["wall_s"] - 1
         print(f"  Dask LocalCluster run time vs pool: {100 * summary['dask_overhead']:+.1f} %")

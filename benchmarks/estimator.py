@@ -89,7 +89,7 @@ def make_problem(template: str, seed: int):
         ts, ys, os_ = [], [], []
         for o in obs:
             y = r.observable(o)
-            if np.any(~np.isfinite(y)) or np.any(y <= 1e-6 * np.max(np.abs(y))):
+            if np.any(~np.isfinite(y)) or np.any(y <= 2e-2 * np.max(np.abs(y))):
                 break
             ys.append(y * (1 + 0.1 * rng.standard_normal(n)))
             ts.append(times)

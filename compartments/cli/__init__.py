@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import sys
 
-import click
 import typer
 
 from .. import __version__
@@ -56,8 +55,25 @@ def _register() -> None:
 
 def fail(message: str) -> None:
     """Print one error line and exit with code 2."""
-    click.echo(f"compartments: error: {message}", err=True)
+    typer.echo(f"compartments: error: {message}", err=True)
     sys.exit(2)
+
+
+# typer >= 0.2x carries its own copy of click: its parse errors are not ``click``'s
+# classes. Take the classes from typer itself so either layout is caught.
+_EXIT = (typer.Exit,)
+_ABORT = (typer.Abort,)
+_PARSE = tuple(c for c in typer.BadParameter.__mro__ if c.__name__ == "ClickException") or (typer.BadParameter,)
+
+
+def _usage_line(exc: Exception) -> str:
+    """A parse error as one line, with where to look for help."""
+    ctx = getattr(exc, "ctx", None)
+    name = getattr(ctx, "info_name", None)
+    where = f" (see 'compartments {name} --help')" if name and name != "compartments" else " (see 'compartments --help')"
+    fmt = getattr(exc, "format_message", None)
+    text = fmt() if callable(fmt) else str(exc)
+    return " ".join(str(text).split()) + where
 
 
 def main(argv: list[str] | None = None) -> None:
@@ -67,18 +83,17 @@ def main(argv: list[str] | None = None) -> None:
         rc = app(args=argv, standalone_mode=False, prog_name="compartments")
         if isinstance(rc, int) and rc:
             sys.exit(rc)
-    except click.exceptions.Exit as exc:
-        sys.exit(exc.exit_code)
-    except click.exceptions.Abort:
-        click.echo("compartments: interrupted", err=True)
+    except _EXIT as exc:
+        sys.exit(getattr(exc, "exit_code", 0))
+    except _ABORT:
+        typer.echo("compartments: interrupted", err=True)
         sys.exit(130)
-    except click.ClickException as exc:
-        where = f" (see 'compartments {exc.ctx.info_name} --help')" if getattr(exc, "ctx", None) and exc.ctx.info_name != "compartments" else " (see 'compartments --help')"
-        fail(exc.format_message().replace("\n", " ") + where)
+    except _PARSE as exc:
+        fail(_usage_line(exc))
     except CompartmentsError as exc:
-        fail(str(exc).replace("\n", " "))
+        fail(str(exc).replace("\r", " ").replace("\n", " "))
     except KeyboardInterrupt:
-        click.echo("compartments: interrupted", err=True)
+        typer.echo("compartments: interrupted", err=True)
         sys.exit(130)
     except OSError as exc:
         fail(f"{getattr(exc, 'filename', '') or ''}: {exc.strerror or exc}".lstrip(": "))

@@ -72,7 +72,8 @@ class Settings:
     ridge : float
         μ: Tikhonov penalty on the output weights (keeps the solve well posed).
     samples_per_piece : int
-        A dosing interval with more observations than this is split into pieces.
+        An interval between dose events holding more observations than this is split
+        into pieces.
     inner_iterations : int
         Gauss–Newton steps on the output weights for nonlinear models.
     """
@@ -305,7 +306,6 @@ class _Subject:
     def __init__(self, owner: Collocation, data: object):
         self.o = owner
         m = owner.model
-        st = owner.settings
         keep = ~np.asarray(data.censored, dtype=bool)  # type: ignore[attr-defined]
         self.t = np.asarray(data.times, dtype=float)[keep]  # type: ignore[attr-defined]
         self.y = np.asarray(data.values, dtype=float)[keep]  # type: ignore[attr-defined]
@@ -393,7 +393,8 @@ class _Subject:
                 continue
             rows = np.nonzero((self.t > a) & (self.t <= b))[0]
             length = b - a
-            c = choose_warp(self.t[rows] - a, length, any(e.time == a for e in evs))
+            after_event = any(e.time == a for e in evs)
+            c = choose_warp(self.t[rows] - a, length, after_event)
             n_pieces = max(1, int(np.ceil(rows.size / max(st.samples_per_piece, 1))))
             tau_rows = _warp(self.t[rows] - a, length, c)
             edges = np.linspace(0.0, 1.0, n_pieces + 1)

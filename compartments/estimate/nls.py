@@ -122,6 +122,8 @@ class LikelihoodStage:
             if cache.phi is None or not np.array_equal(cache.phi, p):
                 try:
                     f, J = problem.predict(p, jacobian=True)
+                    if not (np.all(np.abs(f) < 1e100) and np.all(np.abs(J) < 1e100)):
+                        raise SimulationError("predictions out of range")
                 except SimulationError:
                     # the trust region shrinks on non-finite residuals; the step is rejected
                     f, J = np.full(y.size, np.nan), np.zeros((y.size, p.size))
@@ -177,8 +179,9 @@ class LikelihoodStage:
         prev = np.inf
         rounds = 1 if form else self.reweight
         for _ in range(rounds):
-            sol = least_squares(resid, phi, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
-                                xtol=self.tol, ftol=self.tol, gtol=self.tol, max_nfev=self.max_nfev)
+            with np.errstate(all="ignore"):
+                sol = least_squares(resid, phi, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
+                                    xtol=self.tol, ftol=self.tol, gtol=self.tol, max_nfev=self.max_nfev)
             phi = sol.x
             nit += int(sol.nfev)
             ok = sol.status > 0
@@ -220,8 +223,9 @@ class LikelihoodStage:
 
         x0 = np.concatenate([phi, eta])
         bounds = list(zip(lo, hi)) + eb
-        res = minimize(fg, x0, jac=True, method="L-BFGS-B", bounds=bounds,
-                       options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-9})
+        with np.errstate(all="ignore"):
+            res = minimize(fg, x0, jac=True, method="L-BFGS-B", bounds=bounds,
+                           options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-9})
         if np.isfinite(res.fun) and res.fun < obj:
             return res.x[:nphi], res.x[nphi:], float(res.fun), int(res.nit)
         return phi, eta, obj, int(res.nit)

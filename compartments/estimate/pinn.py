@@ -119,7 +119,7 @@ class NetworkStage:
         self.n_starts = int(n_starts)
         self.threads = int(threads)
         known = set(Settings.__dataclass_fields__)
-        own = {"screen", "max_nfev", "candidates", "spread", "continuation"}
+        own = {"screen", "max_nfev", "candidates", "spread", "continuation", "polish"}
         unknown = set(settings) - known - own
         if unknown:
             from ..errors import UsageError
@@ -129,11 +129,13 @@ class NetworkStage:
                 f"known: {', '.join(sorted(known | own))}"
             )
         self.settings = Settings(**{k: v for k, v in settings.items() if k in known})
-        self.screen: int | None = settings.get("screen")
-        self.max_nfev = int(settings.get("max_nfev", 60))
+        self.screen: int | None = None if settings.get("screen") is None else int(settings["screen"])
+        self.max_nfev: int | None = None if settings.get("max_nfev") is None else int(settings["max_nfev"])
         self.n_candidates = int(settings.get("candidates", 3))
         self.spread = float(settings.get("spread", 0.25))
-        self.continuation = tuple(float(v) for v in settings.get("continuation", (0.3,)))
+        self.polish: int | None = None if settings.get("polish") is None else int(settings["polish"])
+        cont = settings.get("continuation")
+        self.continuation: tuple[float, ...] | None = None if cont is None else tuple(float(v) for v in cont)
 
     # ------------------------------------------------------------------------------------
     def run(self, problem: Problem, starts: Sequence[Array]) -> StageResult:
@@ -168,7 +170,10 @@ class NetworkStage:
         width = hi - lo
 
         # 1. screen ------------------------------------------------------------------------
-        n_screen = self.screen if self.screen is not None else (128 if col.linear else 48)
+        n_screen = self.screen if self.screen is not None else (64 if col.linear else 16)
+        schedule = self.continuation if self.continuation is not None else (() if col.linear else (0.3,))
+        polish = self.polish if self.polish is not None else (4 if col.linear else 0)
+        max_nfev = self.max_nfev if self.max_nfev is not None else (60 if col.linear else 30)
         rng = np.random.default_rng(self.seed)
         own: list[Array] = []
         if n_screen > 0:
@@ -196,7 +201,7 @@ class NetworkStage:
             if time.perf_counter() > deadline:
                 stopped = True
                 break
-            x, fx, ne = self._refine(col, points[k], lo, hi, deadline)
+            x, fx, ne = self._refine(col, points[k], lo, hi, deadline, schedule, max_nfev)
             refined.append(x)
             refined_loss.append(fx)
             nfev += ne
@@ -205,11 +210,20 @@ class NetworkStage:
         pool = refined + given
         pool_loss = refined_loss + [float(loss[j]) for j in range(len(given))]
         misfit = np.array([exact_misfit(problem, ph) for ph in pool])
-        order = _rank(misfit, pool, problem.default_phi, width)
-        cands = _distinct([pool[i] for i in order if np.isfinite(misfit[i])], width, self.n_candidates)
-        wall = time.perf_counter() - t0
-        if not cands:
+        first = np.argsort(misfit, kind="stable")
+        keep = _distinct_indices([pool[i] for i in first], width, self.n_candidates)
+        cand_idx = [int(first[i]) for i in keep if np.isfinite(misfit[first[i]])]
+        if not cand_idx:
             return self._failed(problem, given, "no parameter set gave a finite exact prediction", t0)
+        # near-equal candidates (symmetric solutions) are compared at their exact optimum
+        m0 = misfit[cand_idx[0]]
+        for i in cand_idx:
+            if polish > 0 and misfit[i] <= 10.0 * m0 + 1e-9 and time.perf_counter() < deadline:
+                pool[i], misfit[i] = _polish(problem, pool[i], misfit[i], lo, hi, polish)
+        order = _rank(misfit[cand_idx], [pool[i] for i in cand_idx], problem.default_phi, width)
+        order = [cand_idx[j] for j in order]
+        cands = _distinct([pool[i] for i in order], width, self.n_candidates)
+        wall = time.perf_counter() - t0
         best_i = order[0]
         status = "stopped" if stopped else "converged"
         msg = (
@@ -239,8 +253,8 @@ class NetworkStage:
             },
         )
 
-    def _refine(self, col: Collocation, x0: Array, lo: Array, hi: Array, deadline: float
-                ) -> tuple[Array, float, int]:
+    def _refine(self, col: Collocation, x0: Array, lo: Array, hi: Array, deadline: float,
+                schedule: tuple[float, ...], max_nfev: int) -> tuple[Array, float, int]:
         """Local least squares on the profiled residuals from ``x0``, through the λ schedule."""
         cache: dict[str, Any] = {"phi": None, "warm": None, "r": None, "J": None, "lam": None}
 
@@ -260,10 +274,10 @@ class NetworkStage:
         x = np.clip(x0, lo + 1e-9 * (hi - lo), hi - 1e-9 * (hi - lo))
         total = 0
         cost = np.inf
-        for lam in (*self.continuation, self.settings.physics_weight):
+        for lam in (*schedule, self.settings.physics_weight):
             try:
-                sol = least_squares(lambda p: evaluate(p, lam)[0], x, jac=lambda p: evaluate(p, lam)[1],
-                                    bounds=(lo, hi), method="trf", max_nfev=self.max_nfev, x_scale=1.0,
+                sol = least_squares(lambda p, w=lam: evaluate(p, w)[0], x, jac=lambda p, w=lam: evaluate(p, w)[1],
+                                    bounds=(lo, hi), method="trf", max_nfev=max_nfev, x_scale=1.0,
                                     ftol=1e-8, xtol=1e-8)
             except (_OutOfTime, *_NUMERIC_ERRORS):
                 if cache["phi"] is not None and cache["lam"] == lam:
@@ -310,29 +324,98 @@ def exact_misfit(problem: Problem, phi: Array) -> float:
     -------
     float
         ``inf`` when the model cannot be solved there.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from types import SimpleNamespace
+    >>> from compartments import Dose, load_template
+    >>> from compartments.model import compiled
+    >>> from compartments.estimate.problem import make_problem
+    >>> m = compiled(load_template("one-comp-iv"))
+    >>> s = SimpleNamespace(id="a", times=[1.0, 2.0], values=[4.5, 4.1], observables=[None, None],
+    ...                     censored=[False, False], doses=[Dose(0.0, 100.0)])
+    >>> p = make_problem(m, [s])
+    >>> round(exact_misfit(p, p.to_phi(np.array([0.1, 20.0]))), 4)  # 5·e^{-0.1}, 5·e^{-0.2}
+    0.0001
     """
     try:
-        f, _ = problem.predict(np.asarray(phi, dtype=float))
+        e, _ = _exact_residuals(problem, np.asarray(phi, dtype=float), False)
     except _NUMERIC_ERRORS:
         return np.inf
+    v = float(e @ e)
+    return v if np.isfinite(v) else np.inf
+
+
+def _exact_residuals(problem: Problem, phi: Array, jacobian: bool) -> tuple[Array, Array | None]:
+    """Relative residuals of the exact solution (see :func:`exact_misfit`) and ∂/∂φ."""
+    f, J = problem.predict(phi, jacobian=jacobian)
     y = problem.values
     cens = problem.censored
     oi = problem.obs_index
     lloq = np.concatenate([d.lloq for d in problem.data]) if problem.data else np.zeros(0)
-    e = np.zeros(y.size)
+    scale = np.ones(y.size)
+    target = y.astype(float).copy()
+    active = ~cens
     for k in np.unique(oi):
         sel = (oi == k) & ~cens
         if sel.any():
             floor = 0.05 * float(np.max(np.abs(y[sel])))
-            scale = np.maximum(np.abs(y[sel]), floor if floor > 0 else 1.0)
-            e[sel] = (f[sel] - y[sel]) / scale
-        csel = (oi == k) & cens
-        if csel.any():
-            lim = np.where(np.isfinite(lloq[csel]), lloq[csel], y[csel])
-            lim = np.where(np.isfinite(lim) & (lim > 0), lim, 1.0)
-            e[csel] = np.maximum(f[csel] - lim, 0.0) / lim
-    v = float(e @ e)
-    return v if np.isfinite(v) else np.inf
+            scale[sel] = np.maximum(np.abs(y[sel]), floor if floor > 0 else 1.0)
+    if cens.any():
+        lim = np.where(np.isfinite(lloq), lloq, y)
+        lim = np.where(np.isfinite(lim) & (lim > 0), lim, 1.0)
+        scale[cens] = lim[cens]
+        target[cens] = lim[cens]
+        active = active | (cens & (f > lim))
+    e = np.where(active, (f - target) / scale, 0.0)
+    if not jacobian:
+        return e, None
+    assert J is not None
+    return e, np.where(active[:, None], J / scale[:, None], 0.0)
+
+
+def _polish(problem: Problem, phi: Array, misfit: float, lo: Array, hi: Array, iterations: int
+            ) -> tuple[Array, float]:
+    """A few Levenberg–Marquardt steps on the exact relative residuals.
+
+    Used only to compare near-equal candidates at their exact optimum (the network's
+    finite hidden layer biases symmetric twins differently); bounded to ``[lo, hi]``.
+    """
+    try:
+        r, J = _exact_residuals(problem, phi, True)
+    except _NUMERIC_ERRORS:
+        return phi, misfit
+    cost = float(r @ r)
+    damp = 1e-3
+    for _ in range(iterations):
+        assert J is not None
+        G = J.T @ J
+        g = J.T @ r
+        D = np.diag(np.diag(G)) + 1e-12 * np.eye(G.shape[0])
+        improved = False
+        for _ in range(6):
+            try:
+                step = -np.linalg.solve(G + damp * D, g)
+            except np.linalg.LinAlgError:
+                damp *= 10.0
+                continue
+            trial = np.clip(phi + step, lo, hi)
+            try:
+                rt, Jt = _exact_residuals(problem, trial, True)
+            except _NUMERIC_ERRORS:
+                damp *= 10.0
+                continue
+            ct = float(rt @ rt)
+            if np.isfinite(ct) and ct < cost:
+                phi, r, J, cost = trial, rt, Jt, ct
+                damp = max(damp / 10.0, 1e-9)
+                improved = True
+                break
+            damp *= 10.0
+        if not improved:
+            break
+    return phi, cost if cost < misfit else misfit
 
 
 def _rank(misfit: Array, pool: list[Array], anchor: Array, width: Array) -> list[int]:
@@ -345,14 +428,19 @@ def _rank(misfit: Array, pool: list[Array], anchor: Array, width: Array) -> list
     return [int(i) for i in order]
 
 
-def _distinct(points: list[Array], width: Array, k: int) -> list[Array]:
-    out: list[Array] = []
-    for p in points:
-        if all(np.max(np.abs(p - q) / width) > 0.02 for q in out):
-            out.append(p)
+def _distinct_indices(points: list[Array], width: Array, k: int) -> list[int]:
+    """Indices of up to ``k`` points differing by > 2 % of the box in some coordinate."""
+    out: list[int] = []
+    for i, p in enumerate(points):
+        if all(np.max(np.abs(p - points[j]) / width) > 0.02 for j in out):
+            out.append(i)
         if len(out) >= k:
             break
     return out
+
+
+def _distinct(points: list[Array], width: Array, k: int) -> list[Array]:
+    return [points[i] for i in _distinct_indices(points, width, k)]
 
 
 def _finite_box(problem: Problem) -> tuple[Array, Array]:
