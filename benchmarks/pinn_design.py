@@ -22,7 +22,14 @@ trained with Adam then L-BFGS in torch, parameters squashed into their bounds) o
 first N one-compartment oral problems, for the design notes in
 :mod:`compartments.estimate.pinn`.
 
+``--ablation N`` changes one setting at a time (physics weight, continuation, polish,
+hidden units, no screening) on N problems per template; ``--representation N`` reports
+the profiled loss at the likelihood optimum with the log clock or the log-state
+representation switched off (the loss is ~ the exact misfit when the hidden layer
+represents the solution well).
+
 Usage: python benchmarks/pinn_design.py [--per-template N] [--hard] [--compare-trained N]
+       [--ablation N] [--representation N] [--templates a,b]
 """
 
 from __future__ import annotations
@@ -363,17 +370,100 @@ def compare_trained(n: int) -> None:
               flush=True)
 
 
+ABLATIONS = {
+    "default": {},
+    "lambda=1": {"physics_weight": 1.0},
+    "lambda=10": {"physics_weight": 10.0},
+    "continuation flipped": "flip",
+    "no polish": {"polish": 0},
+    "features=12": {"features": 12},
+    "screen=0": {"screen": 0},
+    "n_starts=2": {"n_starts": 2},
+}
+
+
+def ablation(per_template: int, templates, hard: bool = False) -> None:
+    """The stage with one setting changed at a time: closeness to the optimum, basin, time."""
+    from compartments.estimate.collocation import Collocation
+    from compartments.estimate.nls import LikelihoodStage
+    from compartments.estimate.pinn import NetworkStage
+
+    lik = LikelihoodStage()
+    print(f"\n{'template':14s} {'variant':22s} {'opt×1.5':>8s} {'basin':>6s} {'cpu med':>8s}")
+    for name in templates:
+        cases = []
+        for k in range(per_template):
+            problem, theta = make_problem(name, k, hard)
+            truth = theta[list(problem.free)]
+            ref = lik.run(problem, [problem.to_phi(truth), problem.default_phi])
+            cases.append((problem, ref))
+        linear = Collocation(cases[0][0]).linear
+        for label, variant in ABLATIONS.items():
+            if variant == "flip":
+                variant = {"continuation": (0.3,)} if linear else {"continuation": ()}
+            close = basin = 0
+            cpu = []
+            for problem, ref in cases:
+                c0 = time.process_time()
+                res = NetworkStage(seed=0, **variant).run(problem, [problem.default_phi])
+                cpu.append(time.process_time() - c0)
+                obj = float(lik.run(problem, [res.phi]).objective)
+                best = min(obj, float(ref.objective))
+                basin += obj <= best + 1e-3 * abs(best) + 1e-2
+                close += _within(problem, problem.to_theta_free(res.phi), problem.to_theta_free(ref.phi))
+            n = len(cases)
+            print(f"{name:14s} {label:22s} {close / n:8.2f} {basin / n:6.2f} {np.median(cpu):7.3f}s", flush=True)
+
+
+def representation(per_template: int) -> None:
+    """Profiled loss at the likelihood optimum (0 = exact representation) for devices off."""
+    import compartments.estimate.collocation as col_mod
+    from compartments.estimate.collocation import Collocation
+    from compartments.estimate.nls import LikelihoodStage
+    from compartments.estimate.pinn import exact_misfit
+
+    lik = LikelihoodStage()
+    original_warp = col_mod.choose_warp
+    print(f"\n{'template':14s} {'device':22s} {'median':>9s} {'worst':>9s}  (exact misfit median)")
+    for name in ("one-comp-oral", "two-comp-iv", "predator-prey", "sir"):
+        cases = []
+        for k in range(per_template):
+            problem, theta = make_problem(name, k)
+            ref = lik.run(problem, [problem.to_phi(theta[list(problem.free)]), problem.default_phi])
+            cases.append((problem, ref.phi))
+        exact = np.median([exact_misfit(p, phi) for p, phi in cases])
+        for label in ("all devices", "linear clock", "states as amounts"):
+            losses = []
+            for problem, phi in cases:
+                col_mod.choose_warp = (lambda *a: np.inf) if label == "linear clock" else original_warp
+                col = Collocation(problem)
+                if label == "states as amounts":
+                    for sub in col.subjects:
+                        sub.log_state = np.zeros_like(sub.log_state)
+                losses.append(col.profile(phi)[0])
+            col_mod.choose_warp = original_warp
+            print(f"{name:14s} {label:22s} {np.median(losses):9.3g} {np.max(losses):9.3g}  ({exact:.3g})", flush=True)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--per-template", type=int, default=10)
     ap.add_argument("--hard", action="store_true")
     ap.add_argument("--templates", default=",".join(TEMPLATES))
     ap.add_argument("--compare-trained", type=int, default=0, metavar="N")
+    ap.add_argument("--ablation", type=int, default=0, metavar="N", help="one-setting-off runs, N problems each")
+    ap.add_argument("--representation", type=int, default=0, metavar="N",
+                    help="profiled loss at the optimum with devices off, N problems each")
     args = ap.parse_args()
     warnings.filterwarnings("ignore")
-    run_benchmark(args.per_template, args.hard, tuple(args.templates.split(",")))
+    if args.per_template > 0:
+        run_benchmark(args.per_template, args.hard, tuple(args.templates.split(",")))
     if args.compare_trained:
         compare_trained(args.compare_trained)
+    if args.ablation:
+        ablation(args.ablation, tuple(args.templates.split(",")), args.hard)
+    if args.representation:
+        representation(args.representation)
 
 
 if __name__ == "__main__":

@@ -17,6 +17,7 @@ True
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -123,7 +124,8 @@ class Model:
                         f"parameter {k!r} is not in template {self.template.name!r}; "
                         f"it has {', '.join(self.parameter_names)}"
                     )
-                theta[self.parameter_names.index(k)] = float(v)
+                i = self.parameter_names.index(k)
+                theta[i] = _checked_value(self.template.parameters[i], v, self.template.name)
             return theta
         arr = np.asarray(params, dtype=float)
         if arr.shape != (self.n_params,):
@@ -280,3 +282,18 @@ def compiled(template: Template) -> Model:
         m = compile_model(template)
         _COMPILED[key] = m
     return m
+
+
+def _checked_value(p: Any, value: Any, template: str) -> float:
+    """A user-given parameter value as float: finite, and not negative where the template's
+    range for it starts at 0 or above (zero stays allowed: limit cases such as ``k12 = 0``)."""
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise UsageError(f"parameter {p.name} = {value!r} is not a number") from None
+    if not math.isfinite(v):
+        raise UsageError(f"parameter {p.name} = {v!r} must be a finite number")
+    if p.lower >= 0 and v < 0:
+        raise UsageError(f"parameter {p.name} = {v:g} {p.unit} is negative, but template {template!r} gives it "
+                         f"the range {p.lower:g} to {p.upper:g}; give a value of 0 or more")
+    return v

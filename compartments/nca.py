@@ -644,7 +644,7 @@ def _observable_mask(subject: Any, n: int, observable: str | None, label: str) -
     return np.ones(n, dtype=bool)
 
 
-def nca_subject(subject: Any, observable: str | None = None) -> NCAResult:
+def nca_subject(subject: Any, observable: str | None = None, route: str | None = None) -> NCAResult:
     """Non-compartmental analysis of one study subject.
 
     The subject is duck-typed: it needs ``times``, ``values``, ``censored`` (flags or
@@ -657,6 +657,10 @@ def nca_subject(subject: Any, observable: str | None = None) -> NCAResult:
     and including the time of the second dose); Cmax, AUC0–tlast and λz are reported,
     the quantities extrapolated to infinity (AUC0–∞, AUMC0–∞, % extrapolated, MRT, CL,
     Vz) are None, and a note says so.
+
+    ``route`` is used when the dose's own route is ``"auto"`` (the file did not state it;
+    a caller that fits a model passes the route the model gives it); without it such a
+    dose is analysed as extravascular, with a note.
 
     Parameters
     ----------
@@ -721,7 +725,17 @@ def nca_subject(subject: Any, observable: str | None = None) -> NCAResult:
         return replace(result, route=None)
 
     first = doses[0]
-    route = str(first.route)
+    given = str(first.route)
+    if given == "auto":
+        # the file did not say; the caller may know it from the model (fit) or the user
+        if route is None:
+            route = "oral"
+            notes.append(
+                f"The route of {label}'s dose is not stated; it was analysed as extravascular "
+                "(no back-extrapolation to C0). Give the route (--route) if it was an IV bolus."
+            )
+    else:
+        route = given
     duration = float(first.infusion_duration) if route == "infusion" else None
     rel = times - float(first.time)
     extrapolate = len(doses) == 1

@@ -423,6 +423,14 @@ def read_study(
             f"'{cols.column('value')}' and the blq= option",
             path,
         )
+    if all(s.censored.all() for s in subjects):
+        n_cens = sum(s.n_censored for s in subjects)
+        raise DataError(
+            f"every one of the {n_cens} observations in column '{cols.column('value')}' is below the limit of "
+            "quantification, so nothing can be estimated; check the value and lloq columns (a wrong unit or "
+            "limit?) and that the right column is read as the value",
+            path,
+        )
     settings.update({
         "column_roles": {r: cols.header[j] for r, j in cols.roles.items()},
         "dose_layout_used": plan.layout,

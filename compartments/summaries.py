@@ -495,7 +495,8 @@ def group_tests(fits: Any, covariates: Any, group_by: str, model: str, *, derive
 
     Mann–Whitney U (two-sided) for two groups, Kruskal–Wallis H for more
     (``scipy.stats.mannwhitneyu`` / ``scipy.stats.kruskal``). Groups with fewer than two
-    subjects take no part; with fewer than two such groups there is no test.
+    subjects take no part; with fewer than two such groups there is no test (``test``
+    says "one group only" or "too few subjects per group").
 
     Returns
     -------
@@ -533,6 +534,8 @@ def group_tests(fits: Any, covariates: Any, group_by: str, model: str, *, derive
                 statistic, p = float(r.statistic), float(r.pvalue)
             except ValueError:  # every value identical
                 pass
+        elif len(names) < 2:
+            test = "one group only"
         else:
             test = "too few subjects per group"
         rows.append({"parameter": name, "test": test,

@@ -115,6 +115,20 @@ class TestRecovery:
         for name, value in truth.items():
             assert est[name] == pytest.approx(value, rel=0.2), (name, est)
 
+    def test_lag_time_estimated(self):
+        """An estimated absorption lag is found by the lag grid and the exact polish."""
+        truth = dict(ka=2.0, ke=0.15, V=40.0, tlag=0.6)
+        t = np.array([0.25, 0.5, 0.9, 1.3, 2.0, 3.0, 5.0, 8.0, 12.0, 24.0])
+        y = np.where(t > truth["tlag"], bateman(np.maximum(t - truth["tlag"], 0.0), 300.0, 2.0, 0.15, 40.0), 0.0)
+        subject = SimpleNamespace(id="s1", times=t, values=y, observables=[None] * t.size,
+                                  censored=np.zeros(t.size, bool), doses=(Dose(0.0, 300.0, "oral"),))
+        problem = make_problem(compiled(load_template("one-comp-oral")), [subject], error="proportional",
+                               estimate=("tlag",))
+        res = NetworkStage(seed=0).run(problem, [problem.default_phi])
+        est = _theta(problem, res.phi)
+        for name, value in truth.items():
+            assert est[name] == pytest.approx(value, rel=0.2), (name, est)
+
     def test_predator_prey_prey_only(self):
         """Only prey counted: the predator is reconstructed through the physics.
 

@@ -173,6 +173,8 @@ class TestGroups:
     def test_too_few_per_group(self):
         t = group_tests(records({"ke": [1.0, 2.0, 3.0]}), {"1": {"g": "a"}, "2": {"g": "b"}, "3": {"g": "b"}}, "g", "m")
         assert t.loc["ke", "test"] == "too few subjects per group" and math.isnan(t.loc["ke", "p_exploratory"])
+        t = group_tests(records({"ke": [1.0, 2.0]}), {"1": {"g": "a"}, "2": {"g": "a"}}, "g", "m")
+        assert t.loc["ke", "test"] == "one group only"
 
 
 class TestCorrelations:

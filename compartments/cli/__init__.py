@@ -81,6 +81,8 @@ def main(argv: list[str] | None = None) -> None:
     _register()
     try:
         rc = app(args=argv, standalone_mode=False, prog_name="compartments")
+        if rc == 130:  # typer turns Ctrl-C into exit code 130 without a word
+            typer.echo("compartments: interrupted", err=True)
         if isinstance(rc, int) and rc:
             sys.exit(rc)
     except _EXIT as exc:

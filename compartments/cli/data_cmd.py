@@ -21,6 +21,7 @@ import typer
 
 from ..errors import UsageError
 from . import app
+from .options import can_write_in
 
 #: A file inside every output folder this program writes; only such folders are replaced.
 MARKER = ".compartments-output"
@@ -139,7 +140,7 @@ def check_target(path: Path | None, overwrite: bool, option: str) -> Path | None
         raise UsageError(f"{option} {path} already exists; pass --overwrite to replace it or choose another name")
     if not parent.is_dir():
         raise UsageError(f"{option} {path}: folder {parent} does not exist; create it first")
-    if not os.access(parent, os.W_OK):
+    if not can_write_in(parent):
         raise UsageError(f"{option} {path}: folder {parent} is not writable; choose another place")
     return path
 
@@ -168,7 +169,7 @@ class OutputFolder:
                                  "it will not be replaced: choose a new folder")
         if not parent.is_dir():
             raise UsageError(f"{option} {self.path}: folder {parent} does not exist; create it first")
-        if not os.access(parent, os.W_OK):
+        if not can_write_in(parent):
             raise UsageError(f"{option} {self.path}: folder {parent} is not writable; choose another place")
         self.parent = parent
         self.staging: Path | None = None

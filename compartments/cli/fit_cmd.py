@@ -45,7 +45,7 @@ from .data_cmd import (
     positive,
     split_list,
 )
-from .options import parse_assignments
+from .options import can_write_in, parse_assignments
 
 ERROR_CHOICES = ("additive", "proportional", "combined", "lognormal")
 STRATEGY_CHOICES = ("hybrid", "nls", "network", "multistart")
@@ -53,6 +53,8 @@ STRATEGY_CHOICES = ("hybrid", "nls", "network", "multistart")
 #: Exit code of a run that finished with at least one failed fit.
 EXIT_SOME_FAILED = 3
 EXIT_INTERRUPTED = 130
+#: Most bootstrap replicates per fit (each is a full refit).
+MAX_BOOTSTRAP = 10_000
 
 
 def _templates(models: Sequence[str], search: Sequence[Path]) -> list[Any]:
@@ -144,6 +146,9 @@ def fit_command(
     also = split_list(estimate)
     if bootstrap < 0:
         raise UsageError(f"--bootstrap {bootstrap} must be 0 or more")
+    if bootstrap > MAX_BOOTSTRAP:
+        raise UsageError(f"--bootstrap {bootstrap} is more than {MAX_BOOTSTRAP} replicates per fit; "
+                         "1000 are usually enough")
     if seed < 0:
         raise UsageError(f"--seed {seed} must be 0 or more")
     if workers is not None and workers < 1:
@@ -156,6 +161,14 @@ def fit_command(
     if run_dir is not None and run_dir.exists() and (not run_dir.is_dir() or any(run_dir.iterdir())):
         raise UsageError(f"--run-dir {run_dir} exists and is not an empty folder; use --resume {run_dir} to "
                          "continue that run, or choose a new folder")
+    for option, folder_ in (("--run-dir", run_dir), ("--resume", resume)):
+        if folder_ is None:
+            continue
+        where = folder_ if folder_.is_dir() else (folder_.parent if str(folder_.parent) else Path("."))
+        if not where.is_dir():
+            raise UsageError(f"{option} {folder_}: folder {where} does not exist; create it first")
+        if not can_write_in(where):
+            raise UsageError(f"{option} {folder_}: folder {where} is not writable; choose another place")
 
     # 2. output targets ------------------------------------------------------------------------
     folder = OutputFolder(out, overwrite) if out is not None else None
@@ -172,9 +185,18 @@ def fit_command(
     from ..cohort import run_cohort
 
     tmpl = _templates(model, templates or ())
+    from ..estimate.problem import check_fixed
+
+    for t in tmpl:  # a value out of a template's range is bad input, not a failed fit
+        check_fixed(t, fixed)
     study = load_study(data, map_=map_, dose_column=dose_column, dose_time=dose_time, dose=dose, route=route,
                        duration=duration, time_unit=time_unit, blq=blq, units=units, sheet=sheet,
                        time_axis=tmpl[0].time_unit, subjects=subject)
+    from ..estimate.hybrid import needs_doses
+
+    if all(needs_doses(t) for t in tmpl) and not any(s.doses for s in study.subjects):
+        raise UsageError(f"{data}: no subject has a dose, and without one {', '.join(t.name for t in tmpl)} "
+                         "predict(s) only zeros; give --dose AMOUNT with --route ROUTE, or --dose-column COL")
     if group_by is not None and group_by not in study.covariate_names:
         have = ", ".join(study.covariate_names) or "none"
         raise UsageError(f"--group-by {group_by!r} is not a covariate column of {data}; covariates: {have}")

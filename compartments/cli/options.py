@@ -8,6 +8,9 @@ from pathlib import Path
 from ..dosing import ROUTES, Dose
 from ..errors import UsageError
 
+#: Most doses one ``--dose`` may repeat (``xCOUNT/EVERY``).
+MAX_REPEAT = 10_000
+
 
 def parse_assignments(items: list[str] | None, what: str) -> dict[str, float]:
     """``["ka=1.2", "V=30"]`` → ``{"ka": 1.2, "V": 30.0}`` with one-line errors."""
@@ -42,8 +45,10 @@ def parse_dose(text: str) -> list[Dose]:
             count, every = int(c), float(e)
         except ValueError:
             raise UsageError(f"--dose {text!r}: repeat as xCOUNT/EVERY, e.g. x5/12") from None
-        if count < 1 or not every > 0 or not sep:
+        if count < 1 or not every > 0 or not sep or not math.isfinite(every):
             raise UsageError(f"--dose {text!r}: repeat needs COUNT ≥ 1 and EVERY > 0 hours")
+        if count > MAX_REPEAT:
+            raise UsageError(f"--dose {text!r}: at most {MAX_REPEAT} repeated doses in one --dose")
     duration = None
     if "/" in spec:
         spec, _, d = spec.partition("/")
@@ -83,25 +88,50 @@ def parse_times(text: str) -> list[float]:
             if not c > 0 or b < a:
                 raise ValueError
             n = int(math.floor((b - a) / c + 1e-9)) + 1
-            if n > 1_000_000:
-                raise UsageError(f"--times {text!r}: more than a million time points")
-            return [a + i * c for i in range(n)]
-        vals = [float(x) for x in text.split(",") if x.strip()]
-    except ValueError:
+        else:
+            vals = [float(x) for x in text.split(",") if x.strip()]
+    except (ValueError, OverflowError):
         raise UsageError(f"--times {text!r}: give comma-separated hours (0,1,2) or START:STOP:STEP") from None
+    if ":" in text:
+        if n > 1_000_000:
+            raise UsageError(f"--times {text!r}: more than a million time points; use a larger step")
+        if a < 0:
+            raise UsageError(f"--times {text!r}: times must be finite and ≥ 0")
+        return [a + i * c for i in range(n)]
     if not vals or any((not math.isfinite(v)) or v < 0 for v in vals):
         raise UsageError(f"--times {text!r}: times must be finite and ≥ 0")
     return vals
 
 
+def can_write_in(folder: Path) -> bool:
+    """True when a file can be created in ``folder`` (tried, not guessed).
+
+    ``os.access`` says yes to root on a read-only or special file system (``/proc``), so
+    a small file is created and removed instead.
+    """
+    import os
+    import tempfile
+
+    try:
+        fd, name = tempfile.mkstemp(prefix=".compartments-probe.", dir=folder)
+    except OSError:
+        return False
+    os.close(fd)
+    try:
+        os.unlink(name)
+    except OSError:
+        pass
+    return True
+
+
 def writable_target(path: Path, overwrite: bool = True) -> Path:
     """Check that ``path`` can be written (its folder exists and is writable)."""
-    import os
-
     parent = path.parent if str(path.parent) else Path(".")
-    if not parent.exists():
+    if not parent.is_dir():
         raise UsageError(f"{path}: folder {parent} does not exist; create it first")
-    if not os.access(parent, os.W_OK):
+    if path.is_dir():
+        raise UsageError(f"{path} is a folder; give a file name")
+    if not can_write_in(parent):
         raise UsageError(f"{path}: folder {parent} is not writable; choose another output path")
     if path.exists() and not overwrite:
         raise UsageError(f"{path} already exists; pass --overwrite or choose another name")

@@ -54,6 +54,7 @@ def simulate_command(
                                    help="AMOUNT[@TIME][:ROUTE][/DURATION][xCOUNT/EVERY], e.g. 320:oral or 100x5/12."),
     times: str = typer.Option("0:24:0.5", "--times", "-t", help="Comma list or START:STOP:STEP (template time unit)."),
     out: Path | None = typer.Option(None, "--out", "-o", help="Write a CSV instead of printing a table."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace the --out file if it exists."),
     templates: list[Path] = TEMPLATES_OPT,
     setting: list[str] = typer.Option(None, "--set", metavar="NAME=VALUE", help="Override a template setting."),
 ) -> None:
@@ -69,8 +70,16 @@ def simulate_command(
     doses = [d for spec in (dose or []) for d in parse_dose(spec)]
     tt = np.array(parse_times(times))
     if out is not None:
-        writable_target(out)
-    r = simulate(compiled(t), params, doses, tt)
+        writable_target(out, overwrite)
+    with np.errstate(all="ignore"):
+        r = simulate(compiled(t), params, doses, tt)
+    bad = ~np.isfinite(r.observables)
+    if bad.any():
+        from ..errors import SimulationError
+
+        i, j = (int(k[0]) for k in np.nonzero(bad))
+        raise SimulationError(f"observable {r.observable_names[j]!r} of {t.name!r} is not finite at t = {tt[i]:g} "
+                              f"{t.time_unit} with these parameters (a volume of 0?); check the --param values")
     cols = {"time": r.times}
     cols.update({s: r.states[:, i] for i, s in enumerate(r.state_names)})
     cols.update({o: r.observables[:, i] for i, o in enumerate(r.observable_names)})

@@ -22,17 +22,25 @@ solution ("shooting"), which is what makes a start-free search work.
 Devices (see the measurements in :mod:`compartments.estimate.pinn`):
 
 * **Pieces.** Time is cut at every dose event (bolus, start/end of an infusion, after any
-  lag); each dosing interval is further cut into pieces of at most ``samples_per_piece``
-  observations. A bolus is a jump in the continuity condition at the start of its piece;
-  a zero-order infusion is a constant input over its pieces.
-* **Warped time.** Within a dosing interval, time runs on ``τ = log(1 + u/c)/log(1 + L/c)``
-  (``u`` the time since the interval's start, ``L`` its length) with ``c`` chosen from the
-  sample times (log-spaced samples give a small ``c``: every exponential phase becomes a
-  transition of the same width in τ; evenly spaced samples give a linear clock).
-* **Scaled states.** Amount states are divided by a common scale (total dose, largest
-  observation, largest initial amount). States that start positive, receive no dose and
-  are non-negative (populations) are represented through their logarithm (an ``exp``
-  output: positive by construction, and oscillating populations become smooth).
+  lag); an interval holding more than ``samples_per_piece`` observations is cut further.
+  A bolus is a jump in the continuity condition at the start of its piece; a zero-order
+  infusion is a constant input over its pieces. A sample taken at a dose time sees the
+  state before the dose, as in the simulator.
+* **Warped time.** After a dose event, time runs on the log clock
+  ``τ = log(1 + u/c) / log(1 + L/c)`` (``u`` the time since the event, ``L`` the interval,
+  ``c`` half the first sampling time): every exponential phase becomes a transition of
+  about the same width in τ, and the collocation nodes are densest right after the dose.
+  Intervals not started by a dose (populations from t = 0) use a linear clock.
+* **Scaled states.** Amount states are divided by a common scale ``S`` (total dose,
+  largest observation, largest initial amount). States that start positive, receive no
+  dose and are non-negative (populations) are represented through their logarithm (an
+  ``exp`` output: positive by construction, and oscillating populations become smooth).
+* **Residuals in data units.** The ODE residual of an amount state is multiplied by the
+  gain from the states to the data, ``γ(θ) = S·sqrt(Σ_o Σ_i (∂g_o/∂x_i)² / ymax_o²)``
+  (``S/V`` for a concentration), and, under a relative error model, divided by an
+  envelope of the data (observations normalised to their maximum, interpolated
+  log-linearly in time). Without this a small volume or the low late concentrations
+  would let the trajectory bend the physics at no cost while fitting the data.
 * **Exact-gradient outer search.** The outer Jacobian of the profiled residuals is the
   projected partial Jacobian ``(I − J_W (J_WᵀJ_W)⁻¹ J_Wᵀ) ∂r/∂θ`` (Kaufman 1975, BIT
   15:49), so the outer least-squares solver needs one inner solve per iterate.
@@ -51,9 +59,10 @@ from scipy.linalg import LinAlgError, cho_factor, cho_solve
 
 from ..dosing import Dose
 from ..model import Model
-from .problem import Problem
+from .problem import Problem, SubjectData
 
 Array = NDArray[np.float64]
+
 
 @dataclass(frozen=True)
 class Settings:
@@ -202,9 +211,6 @@ class Collocation:
         self.Pend = _chebyshev_features(np.array([1.0]), self.M)[0][0]
         self.free = np.asarray(problem.free, dtype=np.int64)
         self.log_mask = problem.log_mask
-        self.lag_free = any(
-            r.lag_index is not None and r.lag_index in set(problem.free) for r in m.routes.values()
-        )
         self.dose_states = {r.state_index for r in m.routes.values()}
         self.gains = _gains(m)
         self.obs_linear = self.gains.linear
@@ -303,14 +309,14 @@ def _gains(model: Model) -> _Gains:
 class _Subject:
     """Layout, residuals and inner solve for one subject's data."""
 
-    def __init__(self, owner: Collocation, data: object):
+    def __init__(self, owner: Collocation, data: SubjectData):
         self.o = owner
         m = owner.model
-        keep = ~np.asarray(data.censored, dtype=bool)  # type: ignore[attr-defined]
-        self.t = np.asarray(data.times, dtype=float)[keep]  # type: ignore[attr-defined]
-        self.y = np.asarray(data.values, dtype=float)[keep]  # type: ignore[attr-defined]
-        self.oi = np.asarray(data.obs_index, dtype=np.int64)[keep]  # type: ignore[attr-defined]
-        self.doses: tuple[Dose, ...] = tuple(data.doses)  # type: ignore[attr-defined]
+        keep = ~np.asarray(data.censored, dtype=bool)
+        self.t = np.asarray(data.times, dtype=float)[keep]
+        self.y = np.asarray(data.values, dtype=float)[keep]
+        self.oi = np.asarray(data.obs_index, dtype=np.int64)[keep]
+        self.doses: tuple[Dose, ...] = tuple(data.doses)
         self.nd = int(self.y.size)
         self.sigma = _data_scale(self.y, self.oi, owner.problem.error, len(m.observable_names))
         seen = [k for k in range(len(m.observable_names)) if np.any((self.oi == k) & (self.y != 0))]

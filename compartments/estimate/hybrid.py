@@ -5,8 +5,9 @@ Strategies
     user start values; the likelihood stage refines its candidates and the template
     defaults, keeping the best. ``"nls"``: the likelihood stage from the template defaults
     only. ``"network"``: the network stage alone (its parameters, with the uncertainty
-    evaluated there). ``"multistart"``: the likelihood stage from the defaults and a
-    scrambled Sobol set of starts over the bounds (a slow reference).
+    evaluated there). ``"multistart"``: ``n_starts`` (50) scrambled Sobol points over the
+    bounds are scored by the objective; the likelihood stage starts from the defaults and
+    the best eight of them (a slow reference).
 """
 
 from __future__ import annotations
@@ -39,6 +40,7 @@ Array = NDArray[np.float64]
 STRATEGIES = ("hybrid", "nls", "network", "multistart")
 RSE_LIMIT = 50.0
 CORR_LIMIT = 0.95
+MULTISTART_REFINE = 8
 
 
 def _versions() -> dict[str, str]:
@@ -65,6 +67,20 @@ def _subjects(data: Any, pooled: bool) -> tuple[list[Any], str]:
             raise UsageError("several subjects need pooled=True")
         return list(data), ("pooled" if pooled or len(data) != 1 else str(data[0].id))
     return [data], str(data.id)
+
+
+def needs_doses(template: Template) -> bool:
+    """True when every state of ``template`` starts at zero and only doses can move it.
+
+    Such a model predicts nothing but zeros for a subject without doses.
+
+    Examples
+    --------
+    >>> from compartments import load_template
+    >>> needs_doses(load_template("one-comp-oral")), needs_doses(load_template("predator-prey"))
+    (True, False)
+    """
+    return bool(template.doses) and all(s.initial == 0 for s in template.states)
 
 
 def failed_result(template: Template | str, subject: str, message: str, *, error: str = "additive",
@@ -197,6 +213,12 @@ def fit(
 
         template = load_template(template)
     subjects, label = _subjects(data, pooled)
+    if needs_doses(template) and not any(getattr(s, "doses", ()) for s in subjects):
+        raise FitError(
+            f"subject {label} has no doses, and without a dose every state of {template.name!r} stays at zero; "
+            "give the doses (dose= and route=, or a dose column; command line: --dose AMOUNT --route ROUTE "
+            "or --dose-column COL)"
+        )
     model = compiled(template)
     problem = make_problem(model, subjects, error=error, fixed=fixed, estimate=estimate)
     n_unc = int(np.sum(~problem.censored))
@@ -229,9 +251,21 @@ def fit(
                 stages.append(net)
                 starts = list(net.candidates or (net.phi,)) + [defaults]
             elif strategy == "multistart":
+                # screened multistart: n_starts scrambled Sobol points over the bounds are
+                # scored by the objective at the point itself; the likelihood fit starts from
+                # the defaults and the best MULTISTART_REFINE of them
                 lo, hi = problem.phi_bounds
-                sob = qmc.Sobol(d=problem.n_free, scramble=True, seed=seed).random_base2(max(int(np.ceil(np.log2(max(n_starts - 1, 1)))), 0))[: max(n_starts - 1, 1)]
-                starts = [defaults] + [lo + (hi - lo) * s for s in sob]
+                m = max(int(np.ceil(np.log2(max(n_starts - 1, 1)))), 0)
+                sob = qmc.Sobol(d=problem.n_free, scramble=True, seed=seed).random_base2(m)[: max(n_starts - 1, 1)]
+                pts = [lo + (hi - lo) * s for s in sob]
+                scores = []
+                for q in pts:
+                    try:
+                        scores.append(_objective(problem, q)[0])
+                    except CompartmentsError:
+                        scores.append(np.inf)
+                order = np.argsort(np.where(np.isfinite(scores), scores, np.inf), kind="stable")
+                starts = [defaults] + [pts[i] for i in order[:MULTISTART_REFINE]]
             else:
                 starts = [defaults]
             lik = LikelihoodStage().run(problem, starts)

@@ -60,6 +60,7 @@ class _Cache:
     phi: Array | None = None
     f: Array | None = None
     J: Array | None = None
+    error: str = ""  # the last reason the model could not be solved
 
 
 class LikelihoodStage:
@@ -124,8 +125,9 @@ class LikelihoodStage:
                     f, J = problem.predict(p, jacobian=True)
                     if not (np.all(np.abs(f) < 1e100) and np.all(np.abs(J) < 1e100)):
                         raise SimulationError("predictions out of range")
-                except SimulationError:
+                except SimulationError as exc:
                     # the trust region shrinks on non-finite residuals; the step is rejected
+                    cache.error = str(exc)
                     f, J = np.full(y.size, np.nan), np.zeros((y.size, p.size))
                 cache.phi, cache.f, cache.J = p.copy(), f, J
             assert cache.f is not None and cache.J is not None
@@ -179,9 +181,14 @@ class LikelihoodStage:
         prev = np.inf
         rounds = 1 if form else self.reweight
         for _ in range(rounds):
-            with np.errstate(all="ignore"):
-                sol = least_squares(resid, phi, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
-                                    xtol=self.tol, ftol=self.tol, gtol=self.tol, max_nfev=self.max_nfev)
+            try:
+                with np.errstate(all="ignore"):
+                    sol = least_squares(resid, phi, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
+                                        xtol=self.tol, ftol=self.tol, gtol=self.tol, max_nfev=self.max_nfev)
+            except ValueError:
+                if cache.error:  # say why the model could not be solved, not scipy's symptom
+                    raise SimulationError(f"{cache.error} (at the starting values)") from None
+                raise
             phi = sol.x
             nit += int(sol.nfev)
             ok = sol.status > 0

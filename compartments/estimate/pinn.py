@@ -63,8 +63,10 @@ Examples
 from __future__ import annotations
 
 import time
+import warnings
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -72,7 +74,7 @@ from numpy.typing import NDArray
 from scipy.optimize import least_squares
 from scipy.stats import qmc
 
-from ..errors import CompartmentsError
+from ..errors import CompartmentsError, UsageError
 from .collocation import Collocation, Settings
 from .problem import Problem
 from .stages import StageResult
@@ -95,14 +97,20 @@ class NetworkStage:
     n_starts : int
         Screened points refined in addition to the given starts.
     threads : int
-        BLAS threads while the stage runs (needs ``threadpoolctl``; otherwise the process
-        setting is left as it is). Results do not depend on it.
+        BLAS threads while the stage runs (through ``threadpoolctl`` when it is installed;
+        otherwise the process setting is left alone). The stage does not use torch. Its
+        output does not depend on the thread count (tested with 1 and 2 BLAS threads).
     **settings
-        ``screen`` (int, Sobol points, default 128 for linear and 48 for nonlinear
-        models), ``max_nfev`` (int, per refinement, default 60), ``candidates`` (int,
-        default 3), and any field of :class:`~compartments.estimate.collocation.Settings`
-        (``features``, ``nodes``, ``physics_weight``, ``continuity_weight``, ``ridge``,
-        ``samples_per_piece``, ``inner_iterations``).
+        ``screen`` (int): Sobol points screened (default 64 for models linear in the
+        states, 16 otherwise); ``max_nfev`` (int): evaluations per refinement (60 / 30);
+        ``continuation`` (tuple of float): physics weights passed through before the
+        final one (``()`` / ``(0.3,)``); ``polish`` (int): exact Levenberg–Marquardt
+        steps when comparing near-equal candidates (4 / 0); ``spread`` (float): least
+        distance between refined starts, as a fraction of the box (0.25);
+        ``candidates`` (int, 3); and any field of
+        :class:`~compartments.estimate.collocation.Settings` (``features``, ``nodes``,
+        ``physics_weight``, ``continuity_weight``, ``ridge``, ``samples_per_piece``,
+        ``inner_iterations``).
 
     Examples
     --------
@@ -122,13 +130,16 @@ class NetworkStage:
         own = {"screen", "max_nfev", "candidates", "spread", "continuation", "polish"}
         unknown = set(settings) - known - own
         if unknown:
-            from ..errors import UsageError
-
             raise UsageError(
                 f"unknown network-stage setting(s) {', '.join(sorted(unknown))}; "
                 f"known: {', '.join(sorted(known | own))}"
             )
         self.settings = Settings(**{k: v for k, v in settings.items() if k in known})
+        if self.settings.features < 4 or self.settings.nodes < self.settings.features:
+            raise UsageError(
+                f"network stage: features={self.settings.features} and nodes={self.settings.nodes}; "
+                "use at least 4 features and at least as many nodes as features"
+            )
         self.screen: int | None = None if settings.get("screen") is None else int(settings["screen"])
         self.max_nfev: int | None = None if settings.get("max_nfev") is None else int(settings["max_nfev"])
         self.n_candidates = int(settings.get("candidates", 3))
@@ -153,6 +164,12 @@ class NetworkStage:
         """
         t0 = time.perf_counter()
         lo, hi = _finite_box(problem)
+        for s in starts:
+            if np.shape(s) != (problem.n_free,):
+                    raise UsageError(
+                    f"network stage: a start has shape {np.shape(s)}; it needs {problem.n_free} "
+                    f"working-scale values ({', '.join(problem.names)})"
+                )
         given = [np.clip(np.asarray(s, dtype=float), lo, hi) for s in starts] or [np.clip(problem.default_phi, lo, hi)]
         with _limited_threads(self.threads), np.errstate(all="ignore"):
             problem_msg = _unusable(problem)
@@ -165,54 +182,39 @@ class NetworkStage:
 
     # ------------------------------------------------------------------------------------
     def _search(self, problem: Problem, given: list[Array], lo: Array, hi: Array, t0: float) -> StageResult:
-        col = Collocation(problem, self.settings)
         deadline = t0 + self.max_time
         width = hi - lo
+        lags = _free_lags(problem)
+        if lags:
+            # Lag times move the pieces, so they are not searched by the network: each
+            # value of a small grid is tried with the other parameters searched, and the
+            # exact ranking (and polish) below compares them.
+            found = _Found()
+            keep = [j for j in range(problem.n_free) if j not in lags]
+            for value in _lag_grid(problem, lags, lo, hi):
+                sub = _with_fixed(problem, lags, value)
+                sub_given = [g[keep] for g in given]
+                part = self._explore(sub, sub_given, lo[keep], hi[keep], deadline)
+                for x in part.points:
+                    full = np.empty(problem.n_free)
+                    full[keep] = x
+                    full[lags] = problem.to_phi(np.full(problem.n_free, value))[lags]
+                    found.points.append(full)
+                found.losses.extend(part.losses)
+                found.merge_counts(part)
+            linear = found.linear = part.linear
+        else:
+            found = self._explore(problem, given, lo, hi, deadline)
+            linear = found.linear
+        polish = self.polish if self.polish is not None else (4 if linear else 0)
 
-        # 1. screen ------------------------------------------------------------------------
-        n_screen = self.screen if self.screen is not None else (64 if col.linear else 16)
-        schedule = self.continuation if self.continuation is not None else (() if col.linear else (0.3,))
-        polish = self.polish if self.polish is not None else (4 if col.linear else 0)
-        max_nfev = self.max_nfev if self.max_nfev is not None else (60 if col.linear else 30)
-        rng = np.random.default_rng(self.seed)
-        own: list[Array] = []
-        if n_screen > 0:
-            sob = qmc.Sobol(problem.n_free, scramble=True, rng=rng).random(n_screen)
-            own = [lo + s * width for s in sob]
-        points = given + own
-        loss = np.full(len(points), np.inf)
-        for k, ph in enumerate(points):
-            loss[k] = _safe_loss(col, ph)
-            if time.perf_counter() > deadline and k >= len(given):
-                break
-
-        # 2. refine ------------------------------------------------------------------------
-        chosen = list(range(len(given)))
-        for k in np.argsort(loss[len(given):], kind="stable") + len(given):
-            if len(chosen) >= len(given) + self.n_starts or not np.isfinite(loss[k]):
-                break
-            if all(np.max(np.abs(points[k] - points[j]) / width) > self.spread for j in chosen):
-                chosen.append(int(k))
-        refined: list[Array] = []
-        refined_loss: list[float] = []
-        nfev = 0
-        stopped = False
-        for k in chosen:
-            if time.perf_counter() > deadline:
-                stopped = True
-                break
-            x, fx, ne = self._refine(col, points[k], lo, hi, deadline, schedule, max_nfev)
-            refined.append(x)
-            refined_loss.append(fx)
-            nfev += ne
-
-        # 3. rank by the exact misfit -----------------------------------------------------
-        pool = refined + given
-        pool_loss = refined_loss + [float(loss[j]) for j in range(len(given))]
+        # rank by the exact misfit ------------------------------------------------------
+        pool = found.points + given
+        pool_loss = found.losses + [np.inf] * len(given)
         misfit = np.array([exact_misfit(problem, ph) for ph in pool])
         first = np.argsort(misfit, kind="stable")
-        keep = _distinct_indices([pool[i] for i in first], width, self.n_candidates)
-        cand_idx = [int(first[i]) for i in keep if np.isfinite(misfit[first[i]])]
+        keep_i = _distinct_indices([pool[i] for i in first], width, self.n_candidates)
+        cand_idx = [int(first[i]) for i in keep_i if np.isfinite(misfit[first[i]])]
         if not cand_idx:
             return self._failed(problem, given, "no parameter set gave a finite exact prediction", t0)
         # near-equal candidates (symmetric solutions) are compared at their exact optimum
@@ -223,21 +225,20 @@ class NetworkStage:
         order = _rank(misfit[cand_idx], [pool[i] for i in cand_idx], problem.default_phi, width)
         order = [cand_idx[j] for j in order]
         cands = _distinct([pool[i] for i in order], width, self.n_candidates)
-        wall = time.perf_counter() - t0
         best_i = order[0]
-        status = "stopped" if stopped else "converged"
+        status = "stopped" if found.stopped else "converged"
         msg = (
-            f"searched {int(np.isfinite(loss).sum())} points and refined {len(refined)} "
-            f"({nfev} evaluations); best relative misfit {misfit[best_i]:.4g}"
-            + (f"; stopped at the {self.max_time:g} s limit (raise max_time)" if stopped else "")
+            f"screened {found.screened} points and refined {found.refined} "
+            f"({found.nfev} evaluations); best relative misfit {misfit[best_i]:.4g}"
+            + (f"; stopped at the {self.max_time:g} s limit (raise max_time)" if found.stopped else "")
         )
         return StageResult(
             name=self.name,
             phi=cands[0],
             candidates=tuple(cands),
             objective=float(misfit[best_i]),
-            wall_time=wall,
-            iterations=nfev,
+            wall_time=time.perf_counter() - t0,
+            iterations=found.nfev,
             status=status,
             message=msg,
             extra={
@@ -245,13 +246,54 @@ class NetworkStage:
                 "profiled_loss": float(pool_loss[best_i]),
                 "exact_misfit": float(misfit[best_i]),
                 "candidate_misfits": tuple(float(misfit[i]) for i in order[: len(cands)]),
-                "screened": int(np.isfinite(loss).sum()),
-                "refined": len(refined),
-                "linear": col.linear,
-                "pieces": tuple(s.layout(problem.full_theta(cands[0])).n_pieces for s in col.subjects),
+                "screened": found.screened,
+                "refined": found.refined,
+                "linear": linear,
                 "settings": dict(self.settings.__dict__),
             },
         )
+
+    def _explore(self, problem: Problem, given: list[Array], lo: Array, hi: Array, deadline: float) -> _Found:
+        """Screen and refine on the profiled loss (all free parameters searched)."""
+        col = Collocation(problem, self.settings)
+        width = hi - lo
+        out = _Found(linear=col.linear)
+        n_screen = self.screen if self.screen is not None else (64 if col.linear else 16)
+        schedule = self.continuation if self.continuation is not None else (() if col.linear else (0.3,))
+        max_nfev = self.max_nfev if self.max_nfev is not None else (60 if col.linear else 30)
+
+        # screen: the given starts and a scrambled Sobol set over the box
+        own: list[Array] = []
+        if n_screen > 0:
+            with warnings.catch_warnings():
+                warnings.filterwarnings("ignore", message=".*balance properties.*")
+                sob = qmc.Sobol(problem.n_free, scramble=True, rng=np.random.default_rng(self.seed)).random(n_screen)
+            own = [lo + s * width for s in sob]
+        points = given + own
+        loss = np.full(len(points), np.inf)
+        for k, ph in enumerate(points):
+            loss[k] = _safe_loss(col, ph)
+            if time.perf_counter() > deadline and k >= len(given):
+                break
+        out.screened = int(np.isfinite(loss).sum())
+
+        # refine: every given start and the best screened points, kept apart by `spread`
+        chosen = list(range(len(given)))
+        for k in np.argsort(loss[len(given):], kind="stable") + len(given):
+            if len(chosen) >= len(given) + self.n_starts or not np.isfinite(loss[k]):
+                break
+            if all(np.max(np.abs(points[k] - points[j]) / width) > self.spread for j in chosen):
+                chosen.append(int(k))
+        for k in chosen:
+            if time.perf_counter() > deadline:
+                out.stopped = True
+                break
+            x, fx, ne = self._refine(col, points[k], lo, hi, deadline, schedule, max_nfev)
+            out.points.append(x)
+            out.losses.append(fx)
+            out.nfev += ne
+            out.refined += 1
+        return out
 
     def _refine(self, col: Collocation, x0: Array, lo: Array, hi: Array, deadline: float,
                 schedule: tuple[float, ...], max_nfev: int) -> tuple[Array, float, int]:
@@ -294,6 +336,53 @@ class NetworkStage:
         return StageResult(name=self.name, phi=best, candidates=(best,), objective=float(np.min(misfit)),
                            wall_time=time.perf_counter() - t0, iterations=0, status="failed", message=message,
                            extra={"method": "fixed-hidden-layer network, profiled loss"})
+
+
+@dataclass
+class _Found:
+    """Points refined on the profiled loss, with counts for the report."""
+
+    linear: bool = True
+    points: list[Array] = field(default_factory=list)
+    losses: list[float] = field(default_factory=list)
+    screened: int = 0
+    refined: int = 0
+    nfev: int = 0
+    stopped: bool = False
+
+    def merge_counts(self, other: _Found) -> None:
+        self.screened += other.screened
+        self.refined += other.refined
+        self.nfev += other.nfev
+        self.stopped = self.stopped or other.stopped
+
+
+def _free_lags(problem: Problem) -> list[int]:
+    """Positions (in the free parameters) of lag times being estimated."""
+    lag_params = {r.lag_index for r in problem.model.routes.values() if r.lag_index is not None}
+    return [j for j, i in enumerate(problem.free) if i in lag_params]
+
+
+def _lag_grid(problem: Problem, lags: list[int], lo: Array, hi: Array) -> list[float]:
+    """Lag values tried: 0, ¼, ½ and ¾ of the time to the first non-zero observation."""
+    y = problem.values
+    t = np.concatenate([d.times for d in problem.data]) if problem.data else np.zeros(0)
+    dose_t = min((float(d.time) for s in problem.data for d in s.doses), default=0.0)
+    pos = t[(np.abs(y) > 0) & ~problem.censored & (t > dose_t)]
+    first = float(pos.min() - dose_t) if pos.size else 1.0
+    theta_lo = problem.to_theta_free(lo)[lags].max()
+    theta_hi = problem.to_theta_free(hi)[lags].min()
+    grid = [float(np.clip(f * first, theta_lo, theta_hi)) for f in (0.0, 0.25, 0.5, 0.75)]
+    return sorted(set(grid))
+
+
+def _with_fixed(problem: Problem, positions: list[int], value: float) -> Problem:
+    """The problem with the free parameters at ``positions`` held at ``value``."""
+    base = problem.base.copy()
+    for j in positions:
+        base[problem.free[j]] = value
+    free = tuple(i for j, i in enumerate(problem.free) if j not in positions)
+    return replace(problem, free=free, base=base)
 
 
 class _OutOfTime(Exception):

@@ -9,6 +9,7 @@ Jacobian ``∂f/∂φ`` at any ``φ``.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -178,6 +179,35 @@ class Problem:
         return f, J
 
 
+def check_fixed(template: Any, fixed: Mapping[str, float] | None) -> None:
+    """Refuse a value to hold a parameter at that lies outside the template's range.
+
+    Raises
+    ------
+    UsageError
+        A value that is not a finite number inside ``[lower, upper]`` of its parameter.
+
+    Examples
+    --------
+    >>> from compartments import load_template
+    >>> check_fixed(load_template("one-comp-oral"), {"ka": 1.0})
+    """
+    by_name = {p.name: p for p in template.parameters}
+    for name, value in dict(fixed or {}).items():
+        p = by_name.get(name)
+        if p is None:
+            continue  # unknown names are reported where the parameters are matched
+        try:
+            v = float(value)
+        except (TypeError, ValueError):
+            raise UsageError(f"fixed {name} = {value!r} is not a number") from None
+        if not (math.isfinite(v) and p.lower <= v <= p.upper):
+            raise UsageError(
+                f"fixed {name} = {v:g} {p.unit} is outside the range of template {template.name!r} "
+                f"({p.lower:g} to {p.upper:g}); hold it at a value inside the range, or widen the range in a user template"
+            )
+
+
 def make_problem(
     model: Model,
     subjects: Sequence[Any],
@@ -206,6 +236,7 @@ def make_problem(
     for k in list(fixed) + list(estimate):
         if k not in names:
             raise UsageError(f"parameter {k!r} is not in template {model.template.name!r}; it has {', '.join(names)}")
+    check_fixed(model.template, fixed)
     base = model.param_vector(fixed)
     free = tuple(
         i

@@ -35,6 +35,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import DataError, UsageError
+from .rowlist import names_text
 
 ROLES = ("subject", "time", "value", "observable", "dose", "route", "duration", "rate", "lloq")
 REQUIRED = ("time", "value")
@@ -177,7 +178,7 @@ def resolve_columns(
     split = [split_unit(h) for h in header]
     names = tuple(n for n, _ in split)
     units = tuple(u for _, u in split)
-    found = ", ".join(f"'{h}'" for h in header)
+    found = names_text(header)
     roles: dict[str, int] = {}
     how: dict[str, str] = {}
     for role, wanted in mapping.items():

@@ -29,7 +29,10 @@ def sniff_delimiter(text: str, prefer: str = ",") -> str:
         return prefer
     best, best_score = prefer, (-1, -1, 0)
     for delim in DELIMITERS:
-        counts = [len(r) for r in csv.reader(lines, delimiter=delim)]
+        try:
+            counts = [len(r) for r in csv.reader(lines, delimiter=delim)]
+        except csv.Error:  # e.g. a cell over the csv module's size limit: not this delimiter
+            continue
         if not counts:
             continue
         consistent = all(c == counts[0] for c in counts)
@@ -95,4 +98,31 @@ def parse_delimited(
             path,
             reader.line_num,
         ) from None
+    if header is not None and len(header) == 1:
+        _refuse_other_separator(header[0], path, header_row)
     return header or [], rows, numbers, header_row
+
+
+#: Separators people use that are not read; named when a whole header line is one cell.
+_OTHER = (("|", "vertical bars '|'"), (":", "colons ':'"))
+
+
+def _refuse_other_separator(cell: str, path: str | None, line: int) -> None:
+    """A header read as one column that is plainly several names with another separator.
+
+    A study needs at least a time and a value column, so a one-column header is never
+    usable; when it splits into names on a separator we do not read, say so.
+    """
+    found = [what for sep, what in _OTHER if len([p for p in cell.split(sep) if p.strip()]) > 1]
+    if found:
+        name = found[0]
+    elif len(cell.split()) > 1 and not any(ch in cell for ch in "()[]"):
+        name = "spaces"
+    else:
+        return
+    raise DataError(
+        f"the header is read as one column ({cell[:60]!r}): the cells seem to be separated by {name}; "
+        "separate them with commas, semicolons or tabs (e.g. export as CSV)",
+        path,
+        line,
+    )

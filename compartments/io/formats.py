@@ -26,6 +26,7 @@ from ..errors import DataError
 from .decode import decode_text
 from .delimited import parse_delimited
 from .notes import ReadNote
+from .rowlist import names_text
 
 TEXT_SUFFIXES = {".csv": ",", ".tsv": "\t", ".tab": "\t", ".txt": ","}
 EXCEL_SUFFIXES = (".xlsx", ".xlsm", ".xls")
@@ -114,6 +115,12 @@ def read_table(source: Any, sheet: str | int | None = None) -> RawTable:
     suffix = path.suffix.lower()
     if not data.strip():
         raise DataError("the file is empty; a study file needs a header line and data rows", shown)
+    if sheet is not None and suffix not in EXCEL_SUFFIXES:
+        raise DataError(
+            f"a sheet ({sheet!r}) was asked for, but this is not an Excel workbook ({', '.join(EXCEL_SUFFIXES)}); "
+            "drop the sheet option (--sheet)",
+            shown,
+        )
     if suffix in TEXT_SUFFIXES:
         table = _read_text(data, shown, TEXT_SUFFIXES[suffix])
         table.format = suffix.lstrip(".")
@@ -162,14 +169,14 @@ def _read_excel(path: Path, shown: str, sheet: str | int | None) -> RawTable:
         if sheet is None:
             chosen: str | int = 0
             if len(names) > 1:
-                notes.append(ReadNote(None, None, "flagged", f"the workbook has sheets {', '.join(repr(n) for n in names)}; read the first, '{names[0]}' (choose another with sheet=)"))
+                notes.append(ReadNote(None, None, "flagged", f"the workbook has sheets {names_text(names)}; read the first, '{names[0]}' (choose another with sheet=)"))
         elif isinstance(sheet, int):
             if not 0 <= sheet < len(names):
-                raise DataError(f"the workbook has no sheet number {sheet} (0-based); its sheets are {', '.join(repr(n) for n in names)}", shown)
+                raise DataError(f"the workbook has no sheet number {sheet} (0-based); its sheets are {names_text(names)}; choose one (--sheet)", shown)
             chosen = sheet
         else:
             if sheet not in names:
-                raise DataError(f"the workbook has no sheet '{sheet}'; its sheets are {', '.join(repr(n) for n in names)}", shown)
+                raise DataError(f"the workbook has no sheet '{sheet}'; its sheets are {names_text(names)}; choose one of them (--sheet)", shown)
             chosen = sheet
         frame = pd.read_excel(book, sheet_name=chosen, header=None, dtype=object)
     if frame.shape[0] == 0:
@@ -235,7 +242,7 @@ def _finish(table: RawTable) -> RawTable:
         table.columns = [[col[i] for i in idx] for col in table.columns]
     if table.n_rows == 0:
         raise DataError(
-            f"the file has a header ({', '.join(repr(h) for h in table.header)}) but no data rows",
+            f"the file has a header ({names_text(table.header)}) but no data rows; add the data rows or check that this is the right file",
             table.path,
         )
     return table

@@ -30,6 +30,29 @@ def rows_text(rows: Sequence[int]) -> str:
     return "rows " + ", ".join(str(r) for r in rows[:SHOWN]) + f" and {len(rows) - SHOWN} more"
 
 
+#: Most names (columns, sheets) one message lists, and the longest name shown whole.
+NAMES_SHOWN = 12
+NAME_CHARS = 40
+
+
+def names_text(names: Sequence[str], quote: bool = True) -> str:
+    """Name columns or sheets compactly: the first twelve, each cut to 40 characters.
+
+    Examples
+    --------
+    >>> names_text(["id", "time"])
+    "'id', 'time'"
+    >>> names_text([f"c{i}" for i in range(20)]).endswith("'c11' and 8 more")
+    True
+    """
+    names = [str(n) for n in names]
+    shown = [n if len(n) <= NAME_CHARS else n[: NAME_CHARS - 3] + "..." for n in names[:NAMES_SHOWN]]
+    text = ", ".join(f"'{n}'" if quote else n for n in shown)
+    if len(names) > NAMES_SHOWN:
+        text += f" and {len(names) - NAMES_SHOWN} more"
+    return text
+
+
 def fail_rows(
     what: str, todo: str, path: str | None, rows: Sequence[int], column: str | None
 ) -> NoReturn:

@@ -13,6 +13,7 @@ from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
 from ..errors import DataError, UsageError
+from .rowlist import names_text
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..study import Study
@@ -114,6 +115,13 @@ def declared_units(
         if "time" in given and time_unit_name(given["time"]) != time_unit_name(time_unit):
             raise UsageError(f"time_unit={time_unit!r} and units={{'time': {given['time']!r}}} disagree; give one")
         given["time"] = time_unit
+    known_roles = ("time", "value", "dose", "lloq", "rate", "duration")
+    for key in given:
+        if key not in known_roles and key not in names and key not in header:
+            raise UsageError(
+                f"units: {key!r} is neither a column role ({', '.join(known_roles)}) nor a column of the file "
+                f"({names_text(names)}); check the name (command line: --units ROLE=UNIT)"
+            )
     for key, unit in given.items():
         if not isinstance(unit, str):
             raise UsageError(f"units[{key!r}] must be text like 'mg/L', got {unit!r}")

@@ -4,8 +4,8 @@ Missing: an empty cell, ``NA``, ``N/A``, ``null`` or ``None`` (any case).
 Below the limit of quantification: ``<0.1`` (the limit is 0.1), or one of the words
 ``BLQ``, ``BQL``, ``BLOQ``, ``ND``, ``<LLOQ``, ``<LOQ``, ``below LLOQ``, ``below LOQ``
 (any case), whose limit must come from an ``lloq`` column.
-Not finite: ``nan``, ``inf``, ``infinity`` (any sign, any case) are refused; leave the
-cell empty for a missing value.
+Not finite: ``nan``, ``inf``, ``infinity`` (any sign, any case) and numbers too large
+for a float (``1e400``) are refused; leave the cell empty for a missing value.
 """
 
 from __future__ import annotations
@@ -56,7 +56,10 @@ def parse_number(text: str) -> tuple[int, float]:
     """
     t = text.strip()
     if _NUMBER.match(t):
-        return NUMBER, float(t)
+        v = float(t)
+        if v in (float("inf"), float("-inf")):  # e.g. 1e400: too large for a float
+            return NONFINITE, float("nan")
+        return NUMBER, v
     low = t.lower()
     if low in MISSING:
         return EMPTY, float("nan")
@@ -88,7 +91,10 @@ def parse_measurement(text: str) -> tuple[int, float]:
         return BELOW_WORD, float("nan")
     m = _BELOW.match(t)
     if m:
-        return BELOW_LIMIT, float(m.group(1))
+        limit = float(m.group(1))
+        if limit in (float("inf"), float("-inf")):
+            return NONFINITE, float("nan")
+        return BELOW_LIMIT, limit
     return BAD, float("nan")
 
 

@@ -177,8 +177,10 @@ def group_table(summary: pd.DataFrame, tests: pd.DataFrame) -> Group:
     t.add_column("unit")
     for g in groups:
         t.add_column(f"{g}\nn = {n_max[g]}", justify="right")
-    t.add_column("test")
-    t.add_column("p", justify="right")
+    tested = not set(tests["test"]) <= {"one group only"}
+    if tested:
+        t.add_column("test")
+        t.add_column("p", justify="right")
     short = {"Mann–Whitney U": "M–W U", "Kruskal–Wallis H": "K–W H"}
     for name, r in tests.iterrows():
         cells = []
@@ -191,8 +193,11 @@ def group_table(summary: pd.DataFrame, tests: pd.DataFrame) -> Group:
                 cells.append(f"{fmt(s['geo_mean'])} ({fmt_pct(s['geo_cv_percent'])}){extra}")
             else:
                 cells.append("—")
-        t.add_row(str(name), unit, *cells, short.get(r["test"], r["test"]), _p(r["p_exploratory"]))
+        tail = [short.get(r["test"], r["test"]), _p(r["p_exploratory"])] if tested else []
+        t.add_row(str(name), unit, *cells, *tail)
     used = [f"{v}: {k}" for k, v in short.items() if k in set(tests["test"])]
+    if not tested:
+        return Group(t)
     legend = (", ".join(used) + (" (scipy.stats). " if used else "")) + f"p-values are {EXPLORATORY}."
     return _with_note(t, legend)
 

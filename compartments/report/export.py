@@ -127,12 +127,16 @@ def cross_checks(cohort: Any, study: Any) -> CrossChecks:
     pk = any(getattr(f.model_template, "kind", "") == "pk" for f in cohort.fits)
     if pk and not cohort.settings.get("pooled"):
         ids = set(cohort.subjects)
+        # a dose whose route the file left open takes the route the (first) model gives it
+        routes = [tuple(getattr(f.model_template, "doses", {}) or ()) for f in cohort.fits if f.model_template]
+        bolus = [r for r in (routes[0] if routes else ()) if r != "infusion"]
+        model_route = bolus[0] if len(bolus) == 1 else None
         for s in study.subjects:
             if s.id not in ids:
                 continue
             why = nca_applies(s)
             if why is None:
-                ncas[s.id] = nca_subject(s)
+                ncas[s.id] = nca_subject(s, route=model_route)
             else:
                 skipped[s.id] = why
     return CrossChecks(exposures, ncas, skipped)
