@@ -27,7 +27,7 @@ demo: $(STAMP)
 
 # The suite runs on 2 cores; network-stage threads are pinned to 1 per worker.
 test: $(TSTAMP)
-	OMP_NUM_THREADS=1 MKL_NUM_THREADS=1 MPLBACKEND=Agg $(BIN)/python -m pytest -n 2 -q
+	OMP_NUM_THREADS=1 MKL_NUM_THREADS=1 MPLBACKEND=Agg $(BIN)/python -m pytest -n 2 --dist loadfile -q
 
 lint: $(TSTAMP)
 	$(BIN)/ruff check compartments tests benchmarks demo

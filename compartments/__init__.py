@@ -25,6 +25,7 @@ from .library import list_templates, load_template
 
 __all__ = [
     "__version__",
+    "CohortResult",
     "CompartmentsError",
     "DataError",
     "Dose",
@@ -38,6 +39,7 @@ __all__ = [
     "load_template",
     "read_study",
     "regimen",
+    "run_cohort",
     "simulate",
 ]
 
@@ -52,6 +54,10 @@ def __getattr__(name: str) -> Any:
         from .results import FitResult
 
         return FitResult
+    if name in ("run_cohort", "CohortResult"):
+        from . import cohort
+
+        return getattr(cohort, name)
     if name == "read_study":
         from .study import read_study
 

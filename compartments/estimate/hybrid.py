@@ -288,6 +288,16 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
                strategy: str, profile: bool, bootstrap: int, level: float, t_start: float) -> FitResult:
     model = problem.model
     warnings: list[str] = []
+    if not converged:
+        # a fit that did not converge is recorded as failed (its numbers are not estimates);
+        # the point where it stopped is given in the message
+        where = ", ".join(f"{n}={v:.4g}" for n, v in zip(problem.names, problem.to_theta_free(phi)))
+        return failed_result(
+            template, label,
+            f"the likelihood fit did not converge ({msg.rstrip('.')}); it stopped at {where}. "
+            "Try strategy 'multistart', fix a parameter, or check the data and units",
+            error=error, seed=seed, strategy=strategy, stages=stages,
+            wall_time=time.perf_counter() - t_start)
     phi, twin = _flip_flop(problem, phi, eta, obj)
     names = problem.names
     units = {p.name: p.unit for p in template.parameters}
@@ -307,9 +317,6 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
     bic = obj + k_total * math.log(max(n, 1))
 
     # -- warnings, as plain sentences ----------------------------------------------------
-    if not converged:
-        warnings.append(f"The likelihood fit did not converge ({msg}); results are provisional — try "
-                        "strategy='multistart' or check the data.")
     lo, hi = problem.phi_bounds
     for j, nm in enumerate(names):
         tol = 1e-6 * max(1.0, hi[j] - lo[j])

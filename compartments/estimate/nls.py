@@ -204,14 +204,16 @@ class LikelihoodStage:
         f, _ = pred(phi)
         obj = neg2ll(err, y, f, eta, k, cens, floor).value
         if not form:
-            phi, eta, obj, it2 = self._polish(problem, phi, eta, obj, pred, floor)
+            phi, eta, obj, it2, polished = self._polish(problem, phi, eta, obj, pred, floor)
             nit += it2
+            if polished and not ok:
+                ok, msg = True, "the joint likelihood polish converged"
         if not np.isfinite(obj):
             raise FloatingPointError("the objective is not finite at the solution")
         return phi, float(obj), eta, nit, ok, msg
 
     def _polish(self, problem: Problem, phi: Array, eta: Array, obj: float, pred, floor: float
-                ) -> tuple[Array, Array, float, int]:
+                ) -> tuple[Array, Array, float, int, bool]:
         lo, hi = problem.phi_bounds
         y, cens, k, err = problem.values, problem.censored, problem.obs_index, problem.error
         nphi = phi.size
@@ -234,5 +236,5 @@ class LikelihoodStage:
             res = minimize(fg, x0, jac=True, method="L-BFGS-B", bounds=bounds,
                            options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-9})
         if np.isfinite(res.fun) and res.fun < obj:
-            return res.x[:nphi], res.x[nphi:], float(res.fun), int(res.nit)
-        return phi, eta, obj, int(res.nit)
+            return res.x[:nphi], res.x[nphi:], float(res.fun), int(res.nit), bool(res.success)
+        return phi, eta, obj, int(res.nit), bool(res.success)
