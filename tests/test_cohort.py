@@ -288,9 +288,9 @@ class TestExecution:
         assert c.fits[0].message.startswith("timed out after 0.3 s")
 
     def test_hybrid_pool_equals_serial(self, small):
-        """With the network stage (torch), a pool still matches the serial run."""
+        """With the network stage, a pool still matches the serial run."""
         pytest.importorskip("compartments.estimate.pinn")
-        # The network stage stops at a wall-clock budget (max_time, default 5 s), which
+        # The network stage has a wall-clock safety net (max_time, default 120 s), which
         # makes its result depend on machine load; a generous budget keeps this a test of
         # execution only.
         kw = dict(subjects=["s00", "s03"], strategy="hybrid", fit_options={"network": {"max_time": 600.0}})

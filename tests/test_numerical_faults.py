@@ -220,7 +220,14 @@ class TestTooFewObservations:
         """Subject b has three samples: enough for one-comp-oral (3 parameters), not for two-comp-oral
         (5): that pair is failed with the reason, b is fitted and compared with the other model,
         and subject a is fitted with both (exit 3: some fits failed)."""
-        a = 8 * (np.exp(-0.1 * TIMES) - np.exp(-1.5 * TIMES)) + 0.3 * np.exp(-0.6 * TIMES)
+        # subject a: a genuine two-compartment oral profile, so both models converge for it
+        from compartments import Dose, load_template
+        from compartments.model import compiled
+        from compartments.simulate import simulate
+
+        two = compiled(load_template("two-comp-oral"))
+        a = simulate(two, {"ka": 1.5, "k10": 0.2, "k12": 0.4, "k21": 0.2, "V1": 10.0}, [Dose(0, 100, "oral")],
+                     TIMES).observable()
         tb = np.array([1.0, 4.0, 8.0])
         b = 6 * (np.exp(-0.12 * tb) - np.exp(-1.2 * tb))
         code, doc, out = fit_cli(tmp_path, "subject,time,conc\n" + csv_rows(TIMES, a, "a") + csv_rows(tb, b, "b"),

@@ -189,9 +189,15 @@ class LikelihoodStage:
                 if cache.error:  # say why the model could not be solved, not scipy's symptom
                     raise SimulationError(f"{cache.error} (at the starting values)") from None
                 raise
+            if sol.status == 0:  # evaluation limit: restart once with a fresh trust region
+                nit += int(sol.nfev)
+                with np.errstate(all="ignore"):
+                    sol = least_squares(resid, sol.x, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
+                                        xtol=self.tol, ftol=self.tol, gtol=self.tol, max_nfev=self.max_nfev)
             phi = sol.x
             nit += int(sol.nfev)
-            ok = sol.status > 0
+            # converged: a tolerance was met, or the gradient vanishes at the limit
+            ok = sol.status > 0 or float(sol.optimality) <= 1e-8 * (1.0 + 2.0 * float(sol.cost))
             msg = sol.message
             f, _ = pred(phi)
             eta = initial_eta(err, y, f, k, cens, n_kinds, floor)
