@@ -151,8 +151,12 @@ def main() -> None:
     strategies = tuple(args.strategies.split(","))
     tasks = [(t, 1000 * i + j, strategies) for i, t in enumerate(TEMPLATES) for j in range(args.per_template)]
     t0 = time.perf_counter()
+    results, cov = [], []
     with ProcessPoolExecutor(args.workers) as ex:
-        results = list(ex.map(run_one, tasks))
+        for i, res in enumerate(ex.map(run_one, tasks), 1):
+            results.append(res)
+            print(f"  problem {i}/{len(tasks)} {res['template']} done at {time.perf_counter() - t0:.0f} s",
+                  flush=True)
         cov = list(ex.map(coverage_one, range(args.coverage)))
     total = time.perf_counter() - t0
     rows = []

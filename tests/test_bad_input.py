@@ -33,6 +33,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from template_texts import oral_template
 
 from compartments.cli import main
 from compartments.cli.data_cmd import MARKER
@@ -247,47 +248,7 @@ DATA_CASES = [
 
 
 # ---------------------------------------------------------------------------- templates
-TEMPLATE = """\
-name = "mine"
-description = "one compartment, oral, for the hostile-template tests"
-kind = "pk"
-time_unit = "h"
-
-[states.depot]
-unit = "mg"
-
-[states.central]
-unit = "mg"
-
-[parameters.ka]
-unit = "1/h"
-default = 1.0
-lower = 0.01
-upper = 100.0
-
-[parameters.ke]
-unit = "1/h"
-default = 0.1
-lower = 0.001
-upper = 10.0
-
-[parameters.V]
-unit = "L"
-default = 30.0
-lower = 0.1
-upper = 3000.0
-
-[equations]
-depot = "-ka*depot"
-central = "ka*depot - ke*central"
-
-[doses.oral]
-state = "depot"
-
-[observables.concentration]
-expression = "central / V"
-unit = "mg/L"
-"""
+TEMPLATE = oral_template("mine", "one compartment, oral, for the hostile-template tests")
 
 
 def _tsub(old: str, new: str) -> str:

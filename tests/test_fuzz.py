@@ -31,6 +31,7 @@ import pytest
 import sympy as sp
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from template_texts import oral_template
 
 import compartments
 from compartments.cli import main
@@ -183,47 +184,7 @@ def test_known_escapes_refused(text: str) -> None:
 
 
 # --------------------------------------------------------------------- templates
-TEMPLATE = """\
-name = "fz"
-description = "fuzz base"
-kind = "pk"
-time_unit = "h"
-
-[states.depot]
-unit = "mg"
-
-[states.central]
-unit = "mg"
-
-[parameters.ka]
-unit = "1/h"
-default = 1.0
-lower = 0.01
-upper = 100.0
-
-[parameters.ke]
-unit = "1/h"
-default = 0.1
-lower = 0.001
-upper = 10.0
-
-[parameters.V]
-unit = "L"
-default = 30.0
-lower = 0.1
-upper = 3000.0
-
-[equations]
-depot = "-ka*depot"
-central = "ka*depot - ke*central"
-
-[doses.oral]
-state = "depot"
-
-[observables.concentration]
-expression = "central / V"
-unit = "mg/L"
-"""
+TEMPLATE = oral_template("fz", "fuzz base")
 
 
 def test_template_base_is_valid() -> None:
