@@ -124,8 +124,8 @@ def run_one(args):
 
 def coverage_one(seed):
     from compartments import Dose, fit
-    from compartments.model import compiled
     from compartments.library import load_template
+    from compartments.model import compiled
     from compartments.simulate import simulate
 
     truth = {"ka": 1.3, "ke": 0.12, "V": 25.0}
@@ -138,39 +138,25 @@ def coverage_one(seed):
     return {k: (r.ci[k][0] <= v <= r.ci[k][1]) for k, v in truth.items()}
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--per-template", type=int, default=17)
-    ap.add_argument("--coverage", type=int, default=200)
-    ap.add_argument("--workers", type=int, default=2)
-    ap.add_argument("--quick", action="store_true", help="3 problems per template, 20 coverage replicates")
-    ap.add_argument("--strategies", default=",".join(STRATEGIES))
-    args = ap.parse_args()
-    if args.quick:
-        args.per_template, args.coverage = 3, 20
-    strategies = tuple(args.strategies.split(","))
-    tasks = [(t, 1000 * i + j, strategies) for i, t in enumerate(TEMPLATES) for j in range(args.per_template)]
-    t0 = time.perf_counter()
-    results, cov = [], []
-    with ProcessPoolExecutor(args.workers) as ex:
-        for i, res in enumerate(ex.map(run_one, tasks), 1):
-            results.append(res)
-            print(f"  problem {i}/{len(tasks)} {res['template']} done at {time.perf_counter() - t0:.0f} s",
-                  flush=True)
-        cov = list(ex.map(coverage_one, range(args.coverage)))
-    total = time.perf_counter() - t0
+def summarize(results: list[dict], cov: list[dict], strategies: tuple[str, ...], header: str) -> None:
+    """Print the success and timing tables from finished problems (partial runs too)."""
     rows = []
     for res in results:
         best = min(f.get("objective", np.inf) for f in res["fits"].values())
         for s, f in res["fits"].items():
-            success = f["ok"] and f.get("within3se", False) and f["objective"] <= best + 1e-6 * (1 + abs(best))
-            rows.append((res["template"], s, success, f["time"]))
-    print(f"{len(results)} problems, {len(strategies)} strategies, {args.workers} worker processes, {total:.0f} s")
+            reached = f["ok"] and f["objective"] <= best + 1e-6 * (1 + abs(best))
+            success = reached and f.get("within3se", False)
+            rows.append((res["template"], s, success, f["time"], reached))
+    print(header)
     print()
-    print("| template | " + " | ".join(f"{s} success" for s in strategies) + " | hybrid median s | nls median s | hybrid/nls time |")
-    print("|---|" + "---|" * (len(strategies) + 3))
+    print("| template | problems | " + " | ".join(f"{s} success" for s in strategies)
+          + " | hybrid median s | nls median s | hybrid/nls time |")
+    print("|---|---|" + "---|" * (len(strategies) + 3))
     for t in TEMPLATES + ("all",):
         sel = [r for r in rows if t == "all" or r[0] == t]
+        if not sel:
+            continue
+        n = len({(r[0], i) for i, r in enumerate(sel)}) // max(len(strategies), 1)
         cells = []
         for s in strategies:
             ss = [r for r in sel if r[1] == s]
@@ -179,17 +165,72 @@ def main() -> None:
         tn = [r[3] for r in sel if r[1] == "nls"]
         med_h = np.median(th) if th else np.nan
         med_n = np.median(tn) if tn else np.nan
-        print(f"| {t} | " + " | ".join(cells) + f" | {med_h:.2f} | {med_n:.2f} | {med_h / med_n:.1f}× |")
+        print(f"| {t} | {n} | " + " | ".join(cells) + f" | {med_h:.2f} | {med_n:.2f} | {med_h / med_n:.1f}× |")
+    print()
+    print("Optimisation alone — the fit reached the best −2LL any strategy found (within 1e-6):")
+    print()
+    print("| template | " + " | ".join(strategies) + " |")
+    print("|---|" + "---|" * len(strategies))
+    for t in TEMPLATES + ("all",):
+        sel = [r for r in rows if t == "all" or r[0] == t]
+        if sel:
+            print(f"| {t} | " + " | ".join(
+                f"{100 * np.mean([r[4] for r in sel if r[1] == s]):.0f} %" for s in strategies) + " |")
     print()
     print("| strategy | median s | 90th percentile s |")
     print("|---|---|---|")
     for s in strategies:
         ts = [r[3] for r in rows if r[1] == s]
-        print(f"| {s} | {np.median(ts):.2f} | {np.percentile(ts, 90):.2f} |")
-    print()
-    print(f"95 % CI coverage over {len(cov)} replicates of one one-comp-oral design (goal 90–98 %):")
-    for k in ("ka", "ke", "V"):
-        print(f"  {k}: {100 * np.mean([c[k] for c in cov]):.1f} %")
+        if ts:
+            print(f"| {s} | {np.median(ts):.2f} | {np.percentile(ts, 90):.2f} |")
+    if cov:
+        print()
+        print(f"95 % CI coverage over {len(cov)} replicates of one one-comp-oral design (goal 90–98 %):")
+        for k in ("ka", "ke", "V"):
+            print(f"  {k}: {100 * np.mean([c[k] for c in cov]):.1f} %")
+
+
+def main() -> None:
+    import json
+
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--per-template", type=int, default=17)
+    ap.add_argument("--coverage", type=int, default=200)
+    ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--quick", action="store_true", help="3 problems per template, 20 coverage replicates")
+    ap.add_argument("--strategies", default=",".join(STRATEGIES))
+    ap.add_argument("--templates", default=",".join(TEMPLATES), help="comma-separated subset")
+    ap.add_argument("--log", default="benchmarks/out/estimator.jsonl",
+                    help="each finished problem is appended here as one JSON line")
+    ap.add_argument("--summarize", metavar="JSONL", help="only print the tables from a (partial) log")
+    args = ap.parse_args()
+    strategies = tuple(args.strategies.split(","))
+    if args.summarize:
+        lines = [json.loads(x) for x in open(args.summarize, encoding="utf-8") if x.strip()]
+        summarize([x for x in lines if "fits" in x], [x["coverage"] for x in lines if "coverage" in x],
+                  strategies, f"{len(lines)} logged results from {args.summarize}")
+        return
+    if args.quick:
+        args.per_template, args.coverage = 3, 20
+    templates = tuple(args.templates.split(","))
+    tasks = [(t, 1000 * TEMPLATES.index(t) + j, strategies) for t in templates for j in range(args.per_template)]
+    t0 = time.perf_counter()
+    results, cov = [], []
+    os.makedirs(os.path.dirname(args.log) or ".", exist_ok=True)
+    with open(args.log, "a", encoding="utf-8") as log, ProcessPoolExecutor(args.workers) as ex:
+        for c in ex.map(coverage_one, range(args.coverage)):
+            cov.append(c)
+            log.write(json.dumps({"coverage": {k: bool(v) for k, v in c.items()}}) + "\n")
+            log.flush()
+        for i, res in enumerate(ex.map(run_one, tasks), 1):
+            results.append(res)
+            log.write(json.dumps(res, default=float) + "\n")
+            log.flush()
+            print(f"  problem {i}/{len(tasks)} {res['template']} done at {time.perf_counter() - t0:.0f} s",
+                  flush=True)
+    total = time.perf_counter() - t0
+    summarize(results, cov, strategies,
+              f"{len(results)} problems, {len(strategies)} strategies, {args.workers} worker processes, {total:.0f} s")
 
 
 if __name__ == "__main__":

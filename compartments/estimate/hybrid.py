@@ -25,11 +25,10 @@ from numpy.typing import NDArray
 from scipy.stats import qmc
 
 from ..errors import CompartmentsError, FitError, UsageError
-from ..model import Model, compiled
+from ..model import compiled
 from ..results import DerivedValue, FitResult, Residuals
-from ..simulate import simulate
 from ..template import Template
-from .likelihood import _sd, error_parameter_names, initial_eta, n_error_parameters, neg2ll
+from .likelihood import _sd, error_parameter_names, initial_eta, neg2ll
 from .nls import LikelihoodStage, is_plain_least_squares
 from .problem import Problem, make_problem
 from .stages import StageResult
@@ -136,8 +135,8 @@ def _flip_flop(problem: Problem, phi: Array, eta: Array, obj: float) -> tuple[Ar
     if not abs(tobj - obj) <= 1e-6 * (1 + abs(obj)):
         return phi, None
     if th[ia] >= th[ie]:
-        return phi, dict(zip(names, map(float, twin)))
-    return tphi, dict(zip(names, map(float, th)))
+        return phi, dict(zip(names, map(float, twin), strict=False))
+    return tphi, dict(zip(names, map(float, th), strict=False))
 
 
 def fit(
@@ -291,7 +290,7 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
     if not converged:
         # a fit that did not converge is recorded as failed (its numbers are not estimates);
         # the point where it stopped is given in the message
-        where = ", ".join(f"{n}={v:.4g}" for n, v in zip(problem.names, problem.to_theta_free(phi)))
+        where = ", ".join(f"{n}={v:.4g}" for n, v in zip(problem.names, problem.to_theta_free(phi), strict=False))
         return failed_result(
             template, label,
             f"the likelihood fit did not converge ({msg.rstrip('.')}); it stopped at {where}. "
@@ -303,10 +302,10 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
     units = {p.name: p.unit for p in template.parameters}
     unc = estimate_uncertainty(problem, phi, eta, level)
     theta = problem.to_theta_free(phi)
-    est = {n: float(v) for n, v in zip(names, theta)}
-    se = {n: float(v) for n, v in zip(names, unc.se)}
+    est = {n: float(v) for n, v in zip(names, theta, strict=False)}
+    se = {n: float(v) for n, v in zip(names, unc.se, strict=False)}
     rse = {n: (100.0 * se[n] / abs(est[n]) if est[n] != 0 else float("inf")) for n in names}
-    ci = {n: (float(lo), float(hi)) for n, (lo, hi) in zip(names, unc.ci)}
+    ci = {n: (float(lo), float(hi)) for n, (lo, hi) in zip(names, unc.ci, strict=False)}
     fixed_vals = {
         p.name: float(problem.base[i]) for i, p in enumerate(template.parameters) if i not in problem.free
     }
@@ -368,7 +367,7 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
         observed=y, predicted=f, censored=cens, raw=raw, weighted=raw / sd,
     )
     err_names = error_parameter_names(error, obs_names)
-    err_vals = {nm: float(np.exp(v)) for nm, v in zip(err_names, eta)}
+    err_vals = {nm: float(np.exp(v)) for nm, v in zip(err_names, eta, strict=False)}
     if is_plain_least_squares(problem) and n > problem.n_free:
         err_vals = {err_names[0]: float(sd[0])}
 
@@ -394,7 +393,7 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
         bic=float(bic), n_obs=n, n_params=k_total, residuals=residuals, derived=derived,
         stages=stages, warnings=tuple(warnings), seed=seed, strategy=strategy, versions=_versions(),
         wall_time=time.perf_counter() - t_start, alternatives=(twin,) if twin else (),
-        log_scale={n: bool(v) for n, v in zip(names, problem.log_mask)},
+        log_scale={n: bool(v) for n, v in zip(names, problem.log_mask, strict=False)},
         profiles=profiles, bootstrap=boot,
         doses={d.id: d.doses for d in problem.data}, model_template=template,
     )
@@ -444,7 +443,7 @@ def _profiles(problem: Problem, phi: Array, obj: float, unc: Uncertainty) -> dic
 def _bootstrap(problem: Problem, phi: Array, eta: Array, n_boot: int, seed: int, level: float) -> dict[str, Any]:
     """Parametric bootstrap: simulate from the estimate and its error model, refit."""
     rng = np.random.default_rng(seed)
-    y, cens, k = problem.values, problem.censored, problem.obs_index
+    y, k = problem.values, problem.obs_index
     floor = 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
     f, _ = problem.predict(phi)
     sd, _, _ = _sd(problem.error, f, eta, k, floor)
@@ -477,7 +476,7 @@ def _bootstrap(problem: Problem, phi: Array, eta: Array, n_boot: int, seed: int,
         arr = np.array(draws)
         a = (1 - level) / 2
         out["samples"] = arr
-        out["se"] = dict(zip(problem.names, map(float, arr.std(axis=0, ddof=1) if len(arr) > 1 else np.full(arr.shape[1], np.nan))))
+        out["se"] = dict(zip(problem.names, map(float, arr.std(axis=0, ddof=1) if len(arr) > 1 else np.full(arr.shape[1], np.nan)), strict=False))
         out["ci"] = {nm: (float(np.quantile(arr[:, j], a)), float(np.quantile(arr[:, j], 1 - a)))
                      for j, nm in enumerate(problem.names)}
     return out

@@ -237,7 +237,7 @@ class LikelihoodStage:
             return t.value, np.concatenate([J.T @ t.d_f, t.d_eta])
 
         x0 = np.concatenate([phi, eta])
-        bounds = list(zip(lo, hi)) + eb
+        bounds = list(zip(lo, hi, strict=False)) + eb
         with np.errstate(all="ignore"):
             res = minimize(fg, x0, jac=True, method="L-BFGS-B", bounds=bounds,
                            options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-9})

@@ -48,7 +48,7 @@ def subject_data(subject: Any, model: Model) -> SubjectData:
     """Convert a :class:`compartments.study.Subject` (duck-typed) for ``model``."""
     names = model.observable_names
     idx = []
-    for row, o in zip(getattr(subject, "rows", range(len(subject.times))), subject.observables):
+    for row, o in zip(getattr(subject, "rows", range(len(subject.times))), subject.observables, strict=False):
         if o is None:
             if len(names) != 1 and o is None:
                 raise UsageError(

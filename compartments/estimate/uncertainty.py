@@ -184,7 +184,7 @@ def profile_parameter(problem: Problem, phi: Array, best: float, j: int, se_phi:
         v = float(phi[j])
         start = phi[others]
         step = step0
-        prev_v, prev_o = v, best
+        prev_v, _prev_o = v, best
         found = float("nan")
         for _ in range(max_steps):
             v_new = v + direction * step
@@ -205,7 +205,7 @@ def profile_parameter(problem: Problem, phi: Array, best: float, j: int, se_phi:
                 break
             if v_new == float(bound):
                 break
-            prev_v, prev_o = v_new, obj
+            prev_v = v_new
             v = v_new
             step *= 1.6
         limits.append(found)
