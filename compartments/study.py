@@ -51,8 +51,21 @@ def _frozen(a: Any, dtype: Any) -> NDArray[Any]:
     return out
 
 
+class _Picklable:
+    """Pickling for the frozen data classes below: read-only mapping views cannot be
+    pickled, so they travel as plain dicts (process pools, Dask) and are re-frozen."""
+
+    def __getstate__(self) -> dict[str, Any]:
+        return {k: dict(v) if isinstance(v, MappingProxyType) else v for k, v in self.__dict__.items()}
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        for k, v in state.items():
+            object.__setattr__(self, k, v)
+        self.__post_init__()  # type: ignore[attr-defined]
+
+
 @dataclass(frozen=True, eq=False)
-class Subject:
+class Subject(_Picklable):
     """One subject's observations, doses and covariates.
 
     Attributes
@@ -114,15 +127,6 @@ class Subject:
         if sizes != {n}:
             raise UsageError(f"subject {self.id}: times, values, observables, censored, lloq and rows must have one entry per observation")
 
-    def __getstate__(self) -> dict[str, Any]:
-        # read-only mapping views cannot be pickled; send plain dicts (process pools, Dask)
-        return {k: dict(v) if isinstance(v, MappingProxyType) else v for k, v in self.__dict__.items()}
-
-    def __setstate__(self, state: dict[str, Any]) -> None:
-        for k, v in state.items():
-            object.__setattr__(self, k, v)
-        self.__post_init__()
-
     @property
     def n_obs(self) -> int:
         """Number of observations (censored ones included)."""
@@ -158,7 +162,7 @@ class Subject:
 
 
 @dataclass(frozen=True, eq=False)
-class Study:
+class Study(_Picklable):
     """Subjects read from one source, with the record of how they were read.
 
     Attributes
@@ -205,15 +209,6 @@ class Study:
         ids = [s.id for s in self.subjects]
         if len(set(ids)) != len(ids):
             raise UsageError("a study cannot hold two subjects with the same id")
-
-    def __getstate__(self) -> dict[str, Any]:
-        # read-only mapping views cannot be pickled; send plain dicts (process pools, Dask)
-        return {k: dict(v) if isinstance(v, MappingProxyType) else v for k, v in self.__dict__.items()}
-
-    def __setstate__(self, state: dict[str, Any]) -> None:
-        for k, v in state.items():
-            object.__setattr__(self, k, v)
-        self.__post_init__()
 
     @property
     def ids(self) -> tuple[str, ...]:
