@@ -8,10 +8,18 @@ left out. Missing values are written as empty cells (pandas ``to_csv``).
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import pandas as pd
 import pytest
+from hypothesis import settings
+
+# Property tests draw the same examples on every run (CI must be reproducible); set
+# HYPOTHESIS_PROFILE=explore locally to search with fresh random examples.
+settings.register_profile("ci", derandomize=True, print_blob=True)
+settings.register_profile("explore", derandomize=False, print_blob=True)
+settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "ci"))
 
 
 def _frame(package: str, item: str) -> pd.DataFrame:

@@ -4,7 +4,7 @@
 from __future__ import annotations
 
 import numpy as np
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
 from compartments.dosing import Dose
@@ -61,6 +61,9 @@ def studies(draw):
     with_names = draw(st.booleans())
     keys = draw(st.sets(st.sampled_from(["Wt", "group", "score"])))
     subs = tuple(draw(subjects(s, with_names, keys)) for s in sids)
+    # read_study refuses a study in which every observation is censored (nothing to estimate);
+    # that refusal is tested in test_bad_input, so the round trip needs one quantified value
+    assume(not all(s.censored.all() for s in subs))
     units = {"time": "h", "value": draw(st.sampled_from(["", "mg/L"])), "dose": draw(st.sampled_from(["", "mg", "ug/kg"]))}
     return Study(subs, units=units, time_unit="h", dose_per_weight=units["dose"].endswith("/kg"))
 
