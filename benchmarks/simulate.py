@@ -55,7 +55,7 @@ def main() -> None:
         t0 = time.perf_counter()
         a = simulate(model, p, doses, times, method="expm", sensitivities=args.sensitivities)
         t1 = time.perf_counter()
-        b = simulate(model, p, doses, times, method="ode", rtol=1e-11, sensitivities=args.sensitivities)
+        b = simulate(model, p, doses, times, method="ivp", rtol=1e-11, sensitivities=args.sensitivities)
         t2 = time.perf_counter()
         t_expm += t1 - t0
         t_ode += t2 - t1

@@ -147,6 +147,19 @@ class Model:
         assert self._flat is not None
         return np.asarray(self._flat(*z, *theta), dtype=float)
 
+    def rhs_point(self, theta: Array, sensitivities: bool) -> Callable[[Array], Array]:
+        """``rhs_augmented`` at fixed ``theta`` for one state vector, for an integrator's
+        inner loop: the generated code runs on Python floats, which is about twice as fast
+        as on NumPy scalars for these small expressions."""
+        fn = self._aug if sensitivities else self._flat
+        assert fn is not None
+        th = [float(v) for v in theta]
+
+        def f(z: Array) -> Array:
+            return np.array(fn(*z.tolist(), *th), dtype=float)
+
+        return f
+
     def jac_states(self, x: Array, theta: Array) -> Array:
         return self._fx(*x, *theta)
 

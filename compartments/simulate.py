@@ -6,8 +6,8 @@ the solution is carried across each piece:
 * linear models (``f = A x + b``): exactly, by the matrix exponential of an augmented
   matrix that also carries the constant inputs and, on request, the forward parameter
   sensitivities (Van Loan's block construction; Van Loan 1978, IEEE TAC 23:395);
-* nonlinear models: ``scipy.integrate.solve_ivp`` on the states and the forward
-  sensitivity equations ``dS/dt = f_x S + f_θ``.
+* nonlinear models: LSODA (``scipy.integrate.odeint``; ``solve_ivp`` on request) on the
+  states and the forward sensitivity equations ``dS/dt = f_x S + f_θ``.
 
 A sample taken at the same time as a dose sees the state *before* that dose (a pre-dose
 sample; common practice). A lag time ``τ(θ)`` moves the event, and its sensitivity jumps
@@ -16,13 +16,14 @@ by ``(f(x⁻) − f(x⁺))·∂τ/∂θ`` at the event.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.integrate import solve_ivp
+from scipy.integrate import ODEintWarning, odeint, solve_ivp
 from scipy.linalg import expm
 
 from ._threads import limit_blas_threads
@@ -139,10 +140,12 @@ def simulate(
         Sample times, any order, duplicates allowed; initial conditions hold at t = 0.
     sensitivities : bool
         Also return ∂x/∂θ and ∂y/∂θ.
-    method : {"auto", "expm", "ode"}
-        ``auto`` uses the matrix exponential for linear models and ``solve_ivp`` otherwise.
+    method : {"auto", "expm", "ode", "ivp"}
+        ``auto`` uses the matrix exponential for linear models and ``ode`` otherwise.
+        ``ode`` integrates with LSODA through ``scipy.integrate.odeint``; ``ivp`` with LSODA
+        through ``scipy.integrate.solve_ivp`` (slower; kept as a cross-check).
     rtol, atol : float
-        Integrator tolerances (``ode`` path only).
+        Integrator tolerances (``ode`` and ``ivp`` only).
 
     Examples
     --------
@@ -157,16 +160,19 @@ def simulate(
     t = np.asarray(times, dtype=float).reshape(-1)
     if t.size and (not np.all(np.isfinite(t)) or t.min() < 0):
         raise UsageError("sample times must be finite and ≥ 0 (hours after the start)")
-    if method not in ("auto", "expm", "ode"):
-        raise UsageError(f"method must be 'auto', 'expm' or 'ode', got {method!r}")
+    if method not in ("auto", "expm", "ode", "ivp"):
+        raise UsageError(f"method must be 'auto', 'expm', 'ode' or 'ivp', got {method!r}")
     use_expm = model.is_linear if method == "auto" else method == "expm"
     if use_expm and not model.is_linear:
         raise UsageError(f"template {model.template.name!r} is nonlinear; the matrix exponential does not apply")
     events = _events(model, doses, theta)
     if events and events[0].time < 0:
         raise UsageError("dose times (after any lag) must be ≥ 0")
-    solver = _solve_expm if use_expm else _solve_ode
-    X, S = solver(model, theta, events, t, sensitivities, rtol, atol)
+    if use_expm:
+        X, S = _solve_expm(model, theta, events, t, sensitivities, rtol, atol)
+    else:
+        X, S = _solve_ode(model, theta, events, t, sensitivities, rtol, atol,
+                          integrate=_lsoda_solve_ivp if method == "ivp" else _lsoda_odeint)
     if not (np.all(np.isfinite(X)) and (S is None or np.all(np.isfinite(S)))):
         raise SimulationError(
             f"simulation of {model.template.name!r} produced non-finite values; "
@@ -323,9 +329,29 @@ class _Budget(Exception):
 MAX_EVALUATIONS = 50_000
 
 
+def _lsoda_odeint(fun, jac, z0: Array, grid: Array, args: tuple, rtol: float, atol: float
+                  ) -> tuple[Array, bool, str]:
+    """One piece with ``scipy.integrate.odeint`` (LSODA; its step loop runs in compiled code,
+    so a step costs one Python call of the right-hand side)."""
+    with warnings.catch_warnings():  # the failure is reported through the message instead
+        warnings.simplefilter("ignore", ODEintWarning)
+        Y, info = odeint(fun, z0, grid, args=args, Dfun=jac, tfirst=True, rtol=rtol, atol=atol,
+                         mxstep=MAX_EVALUATIONS, full_output=True)
+    return Y, info["message"] == "Integration successful.", str(info["message"])
+
+
+def _lsoda_solve_ivp(fun, jac, z0: Array, grid: Array, args: tuple, rtol: float, atol: float
+                     ) -> tuple[Array, bool, str]:
+    """One piece with ``scipy.integrate.solve_ivp`` (LSODA driven from Python; the reference
+    the faster driver above is checked against)."""
+    sol = solve_ivp(fun, (grid[0], grid[-1]), z0, method="LSODA", t_eval=grid, args=args, rtol=rtol,
+                    atol=atol, jac=jac)
+    return sol.y.T, sol.status == 0, str(sol.message)
+
+
 def _solve_ode(model: Model, theta: Array, events: list[_Event], t: Array, sens: bool,
-               rtol: float, atol: float | None, max_evaluations: int = MAX_EVALUATIONS
-               ) -> tuple[Array, Array | None]:
+               rtol: float, atol: float | None, max_evaluations: int = MAX_EVALUATIONS,
+               integrate=_lsoda_odeint) -> tuple[Array, Array | None]:
     n, p = model.n_states, model.n_params
     X = np.zeros((t.size, n))
     S_out = np.zeros((t.size, n, p)) if sens else None
@@ -342,18 +368,18 @@ def _solve_ode(model: Model, theta: Array, events: list[_Event], t: Array, sens:
     k = 0
 
     budget = [max_evaluations]
+    rhs = model.rhs_point(theta, sens)
 
-    def fun(_t: float, z: Array, c: Array, cS: Array) -> Array:
+    def fun(_t: float, z: Array, c: Array | None) -> Array:
         budget[0] -= 1
         if budget[0] < 0:
             raise _Budget
-        out = model.rhs_augmented(z, theta, sens)
-        out[:n] += c
-        if sens:
-            out[n:] += cS
+        out = rhs(z)
+        if c is not None:  # constant inputs (infusions) on the states and their sensitivities
+            out += c
         return out
 
-    def jac(_t: float, z: Array, c: Array, cS: Array) -> Array:
+    def jac(_t: float, z: Array, c: Array | None) -> Array:
         J = model.jac_states(z[:n], theta)
         if not sens:
             return J
@@ -366,30 +392,29 @@ def _solve_ode(model: Model, theta: Array, events: list[_Event], t: Array, sens:
         end = stop if np.isfinite(stop) else (float(t_eval[-1]) if t_eval.size else start)
         z0 = np.concatenate([x, S.T.reshape(-1)]) if sens else x.copy()
         if end > start:
+            grid = np.unique(np.r_[start, t_eval, end])
             try:
                 with np.errstate(over="raise", invalid="raise"):
-                    sol = solve_ivp(fun, (start, end), z0, method="LSODA", t_eval=np.unique(np.r_[t_eval, end]),
-                                    args=(u.copy(), uS.T.reshape(-1).copy()), rtol=rtol, atol=a_tol,
-                                    jac=jac)
+                    c = np.concatenate([u, uS.T.reshape(-1)]) if sens else u.copy()
+                    Y, ok, message = integrate(fun, jac, z0, grid, (c if np.any(c) else None,), rtol, a_tol)
             except (_Budget, FloatingPointError):
                 raise SimulationError(
                     f"the integrator gave up on {model.template.name!r} between t={start:g} and t={end:g}: "
                     "the solution grows without bound or needs too many steps at these parameters"
                 ) from None
-            if sol.status != 0 or not np.all(np.isfinite(sol.y)):
+            if not ok or not np.all(np.isfinite(Y)):
                 raise SimulationError(
                     f"the integrator failed for {model.template.name!r} between t={start:g} and "
-                    f"t={end:g}: {sol.message}; the parameters may be extreme or the model stiff"
+                    f"t={end:g}: {message}; the parameters may be extreme or the model stiff"
                 )
-            grid = sol.t
             for i in range(t_eval.size):
                 j = int(np.searchsorted(grid, t_eval[i]))
                 idx = order[k + i]
-                z = sol.y[:, j]
+                z = Y[j]
                 X[idx] = z[:n]
                 if sens:
                     S_out[idx] = z[n:].reshape(p, n).T  # type: ignore[index]
-            zend = sol.y[:, -1]
+            zend = Y[-1]
         else:
             for i in range(t_eval.size):
                 idx = order[k + i]

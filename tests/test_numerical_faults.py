@@ -147,14 +147,14 @@ class TestOverflow:
 
 def _broken_solver(monkeypatch: pytest.MonkeyPatch) -> None:
     """The ODE integrator reports failure on every call (as LSODA does when the step underflows)."""
-    real = simulate_module.solve_ivp
+    real = simulate_module.odeint
 
     def failing(*args, **kwargs):  # noqa: ANN002, ANN003, ANN202
-        sol = real(*args, **kwargs)
-        sol.status, sol.message = -1, "step size became too small (simulated failure)"
-        return sol
+        y, info = real(*args, **kwargs)
+        info["message"] = "step size became too small (simulated failure)"
+        return y, info
 
-    monkeypatch.setattr(simulate_module, "solve_ivp", failing)
+    monkeypatch.setattr(simulate_module, "odeint", failing)
 
 
 IV_ROWS = "subject,time,conc\n" + csv_rows(TIMES, 25.0 * np.exp(-0.15 * TIMES))
@@ -186,7 +186,7 @@ class TestFailingIntegrator:
         def boom(*args, **kwargs):  # noqa: ANN002, ANN003, ANN202
             raise RuntimeError("boom inside the integrator")
 
-        monkeypatch.setattr(simulate_module, "solve_ivp", boom)
+        monkeypatch.setattr(simulate_module, "odeint", boom)
         code, doc, _ = fit_cli(tmp_path, IV_ROWS, "--model", "one-comp-iv,one-comp-mm", "--dose", "100",
                                "--route", "iv", "--strategy", "nls", capfd=capfd)
         assert code == 3

@@ -227,3 +227,18 @@ def test_lotka_volterra_first_integral():
     H = p["delta"] * x - p["gamma"] * np.log(x) + p["beta"] * y - p["alpha"] * np.log(y)
     assert np.ptp(H) < 1e-7 * abs(H[0])
     assert np.ptp(x) > 0.1 * x.mean()  # the orbit actually moves
+
+
+@pytest.mark.parametrize("template", ["predator-prey", "one-comp-mm", "sir"])
+def test_odeint_and_solve_ivp_drivers_agree(template):
+    """The default LSODA driver (scipy odeint) against the same method driven by scipy's
+    solve_ivp, states and sensitivities (scipy as reference; both at rtol 1e-10)."""
+    t = load_template(template)
+    m = compiled(t)
+    doses = [Dose(0.0, 100.0, "iv"), Dose(6.0, 50.0, "iv")] if "iv" in t.doses else []
+    times = np.array([0.0, 0.4, 1.5, 3.0, 6.0, 6.0, 9.5, 15.0])
+    a = simulate(m, None, doses, times, sensitivities=True, method="ode", rtol=1e-10)
+    b = simulate(m, None, doses, times, sensitivities=True, method="ivp", rtol=1e-10)
+    np.testing.assert_allclose(a.states, b.states, rtol=1e-7, atol=1e-9 * np.abs(b.states).max())
+    scale = np.abs(b.state_sensitivities).max()
+    np.testing.assert_allclose(a.state_sensitivities, b.state_sensitivities, rtol=1e-6, atol=1e-8 * scale)

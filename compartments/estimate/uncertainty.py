@@ -5,11 +5,18 @@ Covariance
     regression: ``s² (JᵀJ)⁻¹`` with ``s² = SSR/(n − p)`` (e.g. Bates & Watts, Nonlinear
     Regression Analysis and Its Applications, 1988, §2.3). Otherwise the inverse of the
     observed Fisher information: the Hessian of −log L over structural and error
-    parameters, by central differences of the analytic gradient.
+    parameters, by central differences of the analytic gradient, with the structural block
+    scaled by ``n/(n − p)``. The maximum-likelihood error scale divides the weighted residual
+    sum of squares by n instead of n − p and so understates the spread on small samples; the
+    factor turns it into the weighted-regression estimate ``s² = SSR_w/(n − p)`` (the same
+    correction as the additive case above; Seber & Wild, Nonlinear Regression, 1989, §2.2.1).
+    Measured on a 10-sample one-compartment oral design, it lifts 95 % coverage of ka from
+    about 89 % to the nominal range (benchmarks/estimator.py).
 Intervals
     95 % Wald intervals on the working scale (log scale for log-fitted parameters, then
-    back-transformed) with Student-t quantiles on ``n − k`` degrees of freedom (k counts
-    error parameters too), which reduces to the normal quantile for large n.
+    back-transformed) with Student-t quantiles on ``n − p`` degrees of freedom (p structural
+    parameters; the combined error model also spends one per observable on its second error
+    parameter), which reduces to the normal quantile for large n.
 """
 
 from __future__ import annotations
@@ -87,7 +94,9 @@ def estimate_uncertainty(problem: Problem, phi: Array, eta: Array, level: float 
     f, J = problem.predict(phi, jacobian=True)
     assert J is not None
     n_err = eta.size
-    df = max(n - k - (0 if is_plain_least_squares(problem) else n_err), 0)
+    # error parameters beyond one scale per observable (the combined model's second one)
+    extra = n_err // 2 if err == "combined" else 0
+    df = max(n - k - extra, 0)
     cov_err = np.zeros((0, 0))
     if is_plain_least_squares(problem):
         method = "s²(JᵀJ)⁻¹, s² = SSR/(n − p)"
@@ -98,7 +107,7 @@ def estimate_uncertainty(problem: Problem, phi: Array, eta: Array, level: float 
         cov = s2 * np.linalg.pinv(info) if not singular else np.full((k, k), np.nan)
         df = max(n - k, 0)
     else:
-        method = "inverse observed Fisher information"
+        method = "inverse observed Fisher information × n/(n − p)"
 
         def grad(x: Array) -> Array:
             p, e = x[:k], x[k:]
@@ -122,7 +131,7 @@ def estimate_uncertainty(problem: Problem, phi: Array, eta: Array, level: float 
             except np.linalg.LinAlgError:
                 singular, bad = True, tuple(range(k))
             else:
-                cov = full[:k, :k]
+                cov = full[:k, :k] * (n / df if df >= 1 else 1.0)
                 cov_err = full[k:, k:]
                 if np.any(np.diag(cov) < 0) or not np.all(np.isfinite(cov)):
                     singular = True
