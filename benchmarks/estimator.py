@@ -118,7 +118,11 @@ def run_one(args):
         within = ok and all(
             np.isfinite(r.se.get(k, np.nan)) and abs(r.estimates[k] - v) <= 3 * r.se[k] for k, v in truth.items()
         )
-        out["fits"][s] = {"ok": ok, "time": wall, "objective": r.objective if ok else np.inf, "within3se": within}
+        far = [k for k, v in truth.items()
+               if ok and not (np.isfinite(r.se.get(k, np.nan)) and abs(r.estimates[k] - v) <= 3 * r.se[k])]
+        out["fits"][s] = {"ok": ok, "time": wall, "objective": r.objective if ok else np.inf, "within3se": within,
+                          "estimates": dict(r.estimates) if ok else {}, "se": dict(r.se) if ok else {},
+                          "far": far, "warned": [k for k in far if any(f"{k} " in w for w in r.warnings)]}
     return out
 
 
@@ -177,6 +181,13 @@ def summarize(results: list[dict], cov: list[dict], strategies: tuple[str, ...],
             print(f"| {t} | " + " | ".join(
                 f"{100 * np.mean([r[4] for r in sel if r[1] == s]):.0f} %" for s in strategies) + " |")
     print()
+    far = [(res["template"], f) for res in results for s, f in res["fits"].items()
+           if s == "hybrid" and f.get("far")]
+    if far:
+        warned = sum(bool(f.get("warned")) for _, f in far)
+        print(f"Hybrid fits with a parameter beyond 3 SE of the truth: {len(far)}; in {warned} of them the "
+              "result's warnings name that parameter (poorly determined, on a bound, correlated, flip-flop).")
+        print()
     print("| strategy | median s | 90th percentile s |")
     print("|---|---|---|")
     for s in strategies:

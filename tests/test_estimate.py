@@ -297,3 +297,28 @@ def test_ci_coverage_smoke():
         lo, hi = r.ci["ke"]
         hits += lo <= 0.12 <= hi
     assert hits >= 24
+
+
+def test_lognormal_one_compartment_iv_is_a_straight_line():
+    """With log-normal error, log C = log(D/V) − ke·t is a straight line, so the fit's ke, its
+    SE (residual variance on n − 2 degrees of freedom) and its profile-likelihood interval
+    must equal the slope, its standard error and its t-interval from ordinary linear
+    regression (scipy.stats.linregress as reference; the profile interval is exact here
+    because the model is linear in log V and ke; Bates & Watts 1988, §6.1)."""
+    from scipy import stats
+
+    times = np.array([0.5, 1, 2, 3, 5, 7, 10, 14, 18, 24.0])
+    rng = np.random.default_rng(21)
+    conc = 100 / 12.0 * np.exp(-0.15 * times) * np.exp(0.12 * rng.standard_normal(times.size))
+    s = Subject(id="L", times=times, values=conc, observables=(None,) * times.size,
+                censored=np.zeros(times.size, bool), lloq=np.full(times.size, np.nan),
+                rows=np.arange(2, times.size + 2), doses=(Dose(0, 100, "iv"),), covariates={}, flags=())
+    r = fit(s, "one-comp-iv", error="lognormal", strategy="nls", profile=True)
+    line = stats.linregress(times, np.log(conc))
+    assert r.estimates["ke"] == pytest.approx(-line.slope, rel=1e-6)
+    assert r.estimates["V"] == pytest.approx(100 / np.exp(line.intercept), rel=1e-6)
+    assert r.se["ke"] == pytest.approx(line.stderr, rel=1e-4)
+    q = stats.t.ppf(0.975, times.size - 2)
+    lo, hi = r.profiles["ke"].ci
+    assert lo == pytest.approx(-line.slope - q * line.stderr, rel=1e-3)
+    assert hi == pytest.approx(-line.slope + q * line.stderr, rel=1e-3)

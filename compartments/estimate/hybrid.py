@@ -435,7 +435,7 @@ def _refit(sub: Problem, start: Array) -> tuple[Array, float]:
 
 def _profiles(problem: Problem, phi: Array, obj: float, unc: Uncertainty) -> dict[str, Any]:
     return {
-        problem.names[j]: profile_parameter(problem, phi, obj, j, float(unc.se_phi[j]), _refit)
+        problem.names[j]: profile_parameter(problem, phi, obj, j, float(unc.se_phi[j]), _refit, df=unc.df)
         for j in range(problem.n_free)
     }
 

@@ -159,20 +159,30 @@ class Profile:
     name: str
     values: Array
     objective: Array  # −2LL minimised over the other parameters
-    ci: tuple[float, float]  # where −2LL rises by the χ²₁ quantile (nan when not reached)
+    ci: tuple[float, float]  # where −2LL rises by ``threshold`` (nan when not reached)
     threshold: float
 
 
 def profile_parameter(problem: Problem, phi: Array, best: float, j: int, se_phi: float,
                       refit: Callable[[Problem, Array], tuple[Array, float]], level: float = 0.95,
-                      max_steps: int = 10) -> Profile:
+                      max_steps: int = 10, df: int | None = None) -> Profile:
     """Profile parameter ``j`` of ``problem`` around the estimate ``phi``.
 
-    ``refit(sub_problem, start) -> (phi_sub, objective)`` re-optimises the others.
+    ``refit(sub_problem, start) -> (phi_sub, objective)`` re-optimises the others. The
+    interval ends where −2LL has risen by ``n·log(1 + t²/df)`` (t the Student quantile on
+    ``df`` degrees of freedom): the profile-t interval of nonlinear regression (Bates &
+    Watts 1988, §6.1) written for a profiled error scale, so that it matches the Wald
+    interval's n − p correction; it tends to the χ²₁ quantile as n grows. Without ``df``
+    the χ²₁ quantile is used.
     """
     from dataclasses import replace
 
-    thr = float(stats.chi2.ppf(level, 1))
+    n = problem.n_obs
+    if df is not None and df >= 1:
+        t = float(stats.t.ppf(0.5 + level / 2, df))
+        thr = float(n * np.log1p(t * t / df))
+    else:
+        thr = float(stats.chi2.ppf(level, 1))
     lo_b, hi_b = problem.phi_bounds
     others = [i for i in range(phi.size) if i != j]
     step0 = se_phi if np.isfinite(se_phi) and se_phi > 0 else 0.1
