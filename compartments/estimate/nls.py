@@ -26,6 +26,7 @@ from numpy.typing import NDArray
 from scipy.optimize import least_squares, minimize
 
 from ..errors import CompartmentsError, SimulationError
+from .derivatives import hessian
 from .likelihood import _sd, initial_eta, n_error_parameters, neg2ll
 from .problem import Problem
 from .stages import StageResult
@@ -107,6 +108,12 @@ class LikelihoodStage:
                                (), None, wall, 0, "failed", f"the likelihood fit failed from every start: {msg}")
         results.sort(key=lambda r: r[1])
         phi, obj, eta, nit, ok, msg = results[0]
+        if profiled_form(problem) is None:
+            phi, eta, obj, it2, converged = self._newton(problem, phi, eta, obj)
+            nit += it2
+            if converged and not ok:
+                ok, msg = True, "Newton steps on the joint likelihood converged"
+            results[0] = (phi, obj, eta, nit, ok, msg)
         cands = tuple(r[0] for r in results)
         return StageResult(
             name=self.name, phi=phi, candidates=cands, objective=obj, wall_time=wall,
@@ -125,23 +132,8 @@ class LikelihoodStage:
         k = problem.obs_index
         n_kinds = len(problem.model.observable_names)
         err = problem.error
-        scale = max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
-        floor = 1e-9 * scale
-        cache = _Cache()
-
-        def pred(p: Array) -> tuple[Array, Array]:
-            if cache.phi is None or not np.array_equal(cache.phi, p):
-                try:
-                    f, J = problem.predict(p, jacobian=True)
-                    if not (np.all(np.abs(f) < 1e100) and np.all(np.abs(J) < 1e100)):
-                        raise SimulationError("predictions out of range")
-                except SimulationError as exc:
-                    # the trust region shrinks on non-finite residuals; the step is rejected
-                    cache.error = str(exc)
-                    f, J = np.full(y.size, np.nan), np.zeros((y.size, p.size))
-                cache.phi, cache.f, cache.J = p.copy(), f, J
-            assert cache.f is not None and cache.J is not None
-            return cache.f, cache.J
+        floor = _floor(problem)
+        pred, cache = _predictor(problem)
 
         # weights of the first round: per-observable scale (additive, combined), the data
         # themselves (proportional), unit (log-normal works on the log scale)
@@ -191,23 +183,30 @@ class LikelihoodStage:
         prev = np.inf
         eta_w: Array | None = None
         rounds = 1 if form else self.reweight
+        # evaluations for this start, all rounds together: a start far from any optimum
+        # stops here instead of crawling through every round (the joint polish follows)
+        left = 2 * self.max_nfev
         for _ in range(rounds):
+            if left < 1:
+                break
             # reweighting rounds only move the weights: a loose solve is enough for them, and
             # the joint polish below ends at the full tolerance
             tol = self.tol if form else max(self.tol, ROUND_TOL)
             try:
                 with np.errstate(all="ignore"):
                     sol = least_squares(resid, phi, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
-                                        xtol=tol, ftol=tol, gtol=tol, max_nfev=self.max_nfev)
+                                        xtol=tol, ftol=tol, gtol=tol, max_nfev=min(self.max_nfev, left))
             except ValueError:
                 if cache.error:  # say why the model could not be solved, not scipy's symptom
                     raise SimulationError(f"{cache.error} (at the starting values)") from None
                 raise
-            if sol.status == 0:  # evaluation limit: restart once with a fresh trust region
+            left -= int(sol.nfev)
+            if sol.status == 0 and left >= 1:  # evaluation limit: restart once with a fresh trust region
                 nit += int(sol.nfev)
                 with np.errstate(all="ignore"):
                     sol = least_squares(resid, sol.x, jac=jac, bounds=(lo, hi), method="trf", x_scale="jac",
-                                        xtol=tol, ftol=tol, gtol=tol, max_nfev=self.max_nfev)
+                                        xtol=tol, ftol=tol, gtol=tol, max_nfev=min(self.max_nfev, left))
+                left -= int(sol.nfev)
             phi = sol.x
             nit += int(sol.nfev)
             # converged: a tolerance was met, or the gradient vanishes at the limit
@@ -238,26 +237,115 @@ class LikelihoodStage:
     def _polish(self, problem: Problem, phi: Array, eta: Array, obj: float, pred, floor: float
                 ) -> tuple[Array, Array, float, int, bool]:
         lo, hi = problem.phi_bounds
-        y, cens, k, err = problem.values, problem.censored, problem.obs_index, problem.error
         nphi = phi.size
-        eb = [(e - 25.0, e + 25.0) for e in eta]
-
-        def fg(x: Array) -> tuple[float, Array]:
-            p, e = x[:nphi], x[nphi:]
-            try:
-                f, J = pred(p)
-            except CompartmentsError:
-                return 1e300, np.zeros_like(x)
-            t = neg2ll(err, y, f, e, k, cens, floor)
-            if not np.isfinite(t.value):
-                return 1e300, np.zeros_like(x)
-            return t.value, np.concatenate([J.T @ t.d_f, t.d_eta])
-
+        fg = _joint_objective(problem, pred, floor)
         x0 = np.concatenate([phi, eta])
-        bounds = list(zip(lo, hi, strict=False)) + eb
+        bounds = list(zip(lo, hi, strict=False)) + [(e - 25.0, e + 25.0) for e in eta]
         with np.errstate(all="ignore"):
             res = minimize(fg, x0, jac=True, method="L-BFGS-B", bounds=bounds,
                            options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-9})
         if np.isfinite(res.fun) and res.fun < obj:
             return res.x[:nphi], res.x[nphi:], float(res.fun), int(res.nit), bool(res.success)
         return phi, eta, obj, int(res.nit), bool(res.success)
+
+    def _newton(self, problem: Problem, phi: Array, eta: Array, obj: float
+                ) -> tuple[Array, Array, float, int, bool]:
+        """Newton steps on the joint likelihood from the best start (see ``newton_polish``)."""
+        lo, hi = problem.phi_bounds
+        nphi = phi.size
+        pred, _ = _predictor(problem)
+        fg = _joint_objective(problem, pred, _floor(problem))
+        x = np.concatenate([phi, eta])
+        with np.errstate(all="ignore"):
+            x, fx, nit, converged = newton_polish(fg, x, obj, np.r_[lo, eta - 25.0], np.r_[hi, eta + 25.0])
+        return x[:nphi], x[nphi:], fx, nit, converged
+
+
+def _floor(problem: Problem) -> float:
+    """Predictions below this count as zero (relative to the largest observed value)."""
+    y = problem.values
+    return 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+
+
+def _predictor(problem: Problem):
+    """Predictions and Jacobian at ``phi``, remembered for the last ``phi`` asked."""
+    cache = _Cache()
+    n = problem.values.size
+
+    def pred(p: Array) -> tuple[Array, Array]:
+        if cache.phi is None or not np.array_equal(cache.phi, p):
+            try:
+                f, J = problem.predict(p, jacobian=True)
+                if not (np.all(np.abs(f) < 1e100) and np.all(np.abs(J) < 1e100)):
+                    raise SimulationError("predictions out of range")
+            except SimulationError as exc:
+                # the trust region shrinks on non-finite residuals; the step is rejected
+                cache.error = str(exc)
+                f, J = np.full(n, np.nan), np.zeros((n, p.size))
+            cache.phi, cache.f, cache.J = p.copy(), f, J
+        assert cache.f is not None and cache.J is not None
+        return cache.f, cache.J
+
+    return pred, cache
+
+
+def _joint_objective(problem: Problem, pred, floor: float):
+    """``x = [phi, eta] -> (−2LL, gradient)``; 1e300 where the model cannot be solved."""
+    y, cens, k, err = problem.values, problem.censored, problem.obs_index, problem.error
+    nphi = problem.n_free
+
+    def fg(x: Array) -> tuple[float, Array]:
+        p, e = x[:nphi], x[nphi:]
+        try:
+            f, J = pred(p)
+        except CompartmentsError:
+            return 1e300, np.zeros_like(x)
+        t = neg2ll(err, y, f, e, k, cens, floor)
+        if not np.isfinite(t.value):
+            return 1e300, np.zeros_like(x)
+        return t.value, np.concatenate([J.T @ t.d_f, t.d_eta])
+
+    return fg
+
+
+def newton_polish(fg, x: Array, fx: float, lo: Array, hi: Array, max_iter: int = 12
+                  ) -> tuple[Array, float, int, bool]:
+    """Damped Newton steps on ``fg(x) -> (value, gradient)`` from ``x`` within [lo, hi].
+
+    The Hessian comes from central differences of the analytic gradient. A quasi-Newton
+    method stops short of the optimum on long curved valleys (measured on predator–prey with
+    both species counted: −2LL 0.01–0.1 above the best of a 50-start multistart); a few
+    Newton steps converge quadratically there. Steps are Levenberg-damped until they lower
+    the value; the loop ends when the predicted decrease is below 1e-10 (converged), when no
+    damping helps, or after ``max_iter`` steps.
+    """
+    def grad(z: Array) -> Array:
+        return fg(z)[1]
+
+    nit = 0
+    for nit in range(1, max_iter + 1):
+        g = grad(x)
+        H = hessian(grad, x)
+        if not (np.all(np.isfinite(g)) and np.all(np.isfinite(H))):
+            return x, fx, nit, False
+        scale = max(float(np.max(np.abs(np.diag(H)))), 1e-12)
+        lam = 0.0
+        moved = False
+        for _ in range(12):
+            try:
+                step = -np.linalg.solve(H + lam * scale * np.eye(x.size), g)
+            except np.linalg.LinAlgError:
+                lam = max(lam * 10, 1e-8)
+                continue
+            predicted = -(g @ step + 0.5 * step @ H @ step)
+            if lam == 0.0 and 0 <= predicted < 1e-10 * (1 + abs(fx)):
+                return x, fx, nit, True
+            xn = np.clip(x + step, lo, hi)
+            fn = fg(xn)[0]
+            if np.isfinite(fn) and fn < fx:
+                x, fx, moved = xn, float(fn), True
+                break
+            lam = max(lam * 10, 1e-8)
+        if not moved:
+            return x, fx, nit, False
+    return x, fx, nit, False

@@ -29,6 +29,7 @@ from numpy.typing import NDArray
 from scipy import stats
 from scipy.optimize import brentq
 
+from .derivatives import hessian
 from .likelihood import neg2ll
 from .nls import is_plain_least_squares
 from .problem import Problem
@@ -69,19 +70,6 @@ def _information_singular(info: Array) -> tuple[bool, tuple[int, ...]]:
         vec = np.abs(v[:, j])
         bad.update(int(i) for i in np.flatnonzero(vec > 0.3 * vec.max()))
     return True, tuple(sorted(bad))
-
-
-def hessian(fun: Callable[[Array], Array], x: Array, rel: float = 1e-5) -> Array:
-    """Symmetric Hessian by central differences of an analytic gradient ``fun``."""
-    n = x.size
-    H = np.zeros((n, n))
-    for i in range(n):
-        h = rel * max(1.0, abs(x[i]))
-        xp, xm = x.copy(), x.copy()
-        xp[i] += h
-        xm[i] -= h
-        H[:, i] = (fun(xp) - fun(xm)) / (2 * h)
-    return 0.5 * (H + H.T)
 
 
 def estimate_uncertainty(problem: Problem, phi: Array, eta: Array, level: float = 0.95) -> Uncertainty:
