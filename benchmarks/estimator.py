@@ -142,7 +142,7 @@ def truth_objective(template: str, seed: int) -> tuple[float, int]:
 def _names_as_uncertain(warning: str, name: str) -> bool:
     """The warning says that ``name`` is poorly determined, on a bound, strongly correlated,
     not identifiable or has too few observations (the flip-flop note does not count)."""
-    flags = ("poorly determined", "bound", "strongly correlated", "cannot be identified", "Only ")
+    flags = ("poorly determined", "bound", "strongly correlated", "cannot be identified", "Only ", "too narrow")
     return (f"{name} " in warning or f"{name}," in warning) and any(f in warning for f in flags)
 
 
@@ -262,7 +262,7 @@ def summarize(results: list[dict], cov: list[dict], strategies: tuple[str, ...],
         warned = sum(bool(f.get("warned")) for _, f in far)
         print(f"Hybrid fits with a parameter beyond 3 SE of the truth: {len(far)}; in {warned} of them the "
               "result's warnings name that parameter as uncertain (poorly determined, on a bound, strongly "
-              "correlated, not identifiable; the flip-flop note does not count).")
+              "correlated, not identifiable, interval too narrow; the flip-flop note does not count).")
         print()
     print("| strategy | median s | 90th percentile s |")
     print("|---|---|---|")

@@ -32,11 +32,13 @@ from .likelihood import _sd, error_parameter_names, initial_eta, neg2ll
 from .nls import LikelihoodStage, is_plain_least_squares
 from .problem import Problem, make_problem
 from .stages import StageResult
-from .uncertainty import Uncertainty, estimate_uncertainty, profile_parameter
+from .uncertainty import Uncertainty, check_wald_intervals, estimate_uncertainty, profile_parameter
 
 Array = NDArray[np.float64]
 
 STRATEGIES = ("hybrid", "nls", "network", "multistart")
+#: A Wald interval end whose likelihood level falls this far below the nominal one is flagged.
+WALD_SLACK = 0.05
 RSE_LIMIT = 50.0
 CORR_LIMIT = 0.95
 MULTISTART_REFINE = 8
@@ -339,6 +341,14 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
                 if np.isfinite(c) and abs(c) > CORR_LIMIT:
                     warnings.append(f"{names[i]} and {names[j]} are strongly correlated (r = {c:+.3f}); "
                                     "the data may support only a combination of them.")
+        for c in check_wald_intervals(problem, phi, eta, unc, obj, level):
+            if c.level < level - WALD_SLACK:
+                warnings.append(
+                    f"The {100 * level:.0f} % interval of {names[c.index]} is too narrow on its {c.side} side: "
+                    f"the likelihood rises only {c.rise:.2g} at that end ({c.expected:.2g} expected), which is "
+                    f"the edge of a {100 * c.level:.0f} % region at most; the data support values beyond it. "
+                    "Use the profile-likelihood interval (profile=True, --profile)."
+                )
     if n <= k_total:
         warnings.append(f"Only {n} observations for {k_total} parameters (including the error model): "
                         "no degrees of freedom remain for standard errors.")

@@ -29,8 +29,9 @@ from numpy.typing import NDArray
 from scipy import stats
 from scipy.optimize import brentq
 
+from ..errors import CompartmentsError
 from .derivatives import hessian
-from .likelihood import neg2ll
+from .likelihood import initial_eta, neg2ll
 from .nls import is_plain_least_squares
 from .problem import Problem
 
@@ -225,3 +226,62 @@ def profile_parameter(problem: Problem, phi: Array, best: float, j: int, se_phi:
         nat = vs
         ci = tuple(float(x) for x in limits)
     return Profile(problem.names[j], nat, objs, (ci[0], ci[1]), thr)
+
+
+# -- is the quadratic approximation good enough? ------------------------------------------
+@dataclass(frozen=True)
+class WaldCheck:
+    """−2LL at one end of a parameter's Wald interval, and the confidence level it stands for."""
+
+    index: int
+    side: str  # "lower" or "upper"
+    rise: float  # −2LL at the interval's end minus the optimum (an upper bound on the profile's)
+    expected: float  # the rise the interval assumes there (the profile threshold at its level)
+    level: float  # the confidence level of a profile interval ending where −2LL has risen by ``rise``
+
+
+def check_wald_intervals(problem: Problem, phi: Array, eta: Array, unc: Uncertainty, best: float,
+                         level: float = 0.95) -> list[WaldCheck]:
+    """Evaluate −2LL at both ends of every Wald interval.
+
+    The other parameters follow the conditional mean path ``φ + cov[:, j]/cov[j, j]·δ`` (the
+    profile path of a quadratic likelihood; clipped to the bounds), error parameters at their
+    estimate or their moment values, whichever gives the lower value; no refits, so the rise
+    found is an upper bound on the profile likelihood's rise at that point. Two simulations
+    per parameter. The rise is turned into the level of the profile interval that would end
+    there (the inverse of ``n·log(1 + t²/df)``, see ``profile_parameter``): an end whose level
+    is well below the nominal one sits inside the region the data support, so the Wald
+    interval is too narrow on that side (e.g. an absorption rate constant whose absorption
+    phase was not sampled: the likelihood is nearly flat above the estimate).
+    """
+    n, df, q = problem.n_obs, unc.df, unc.quantile
+    if df < 1 or not np.isfinite(q) or unc.singular:
+        return []
+    expected = float(n * np.log1p(q * q / df))
+    y, cens, idx, err = problem.values, problem.censored, problem.obs_index, problem.error
+    floor = 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+    n_kinds = len(problem.model.observable_names)
+    lo_b, hi_b = problem.phi_bounds
+    out = []
+    for j in range(phi.size):
+        if not (np.isfinite(unc.se_phi[j]) and unc.se_phi[j] > 0):
+            continue
+        path = unc.cov_phi[:, j] / unc.cov_phi[j, j]
+        for side, sign in (("lower", -1.0), ("upper", 1.0)):
+            p = phi + sign * q * unc.se_phi[j] * path
+            if not lo_b[j] <= p[j] <= hi_b[j]:
+                continue  # the interval leaves the template's bounds: the bound warning covers it
+            p = np.clip(p, lo_b, hi_b)
+            try:
+                f, _ = problem.predict(p)
+            except CompartmentsError:
+                continue
+            eta_m = initial_eta(err, y, f, idx, cens, n_kinds, floor)
+            with np.errstate(all="ignore"):
+                rise = float(np.nanmin([neg2ll(err, y, f, e, idx, cens, floor).value for e in (eta, eta_m)])) - best
+            if not np.isfinite(rise):
+                continue
+            with np.errstate(over="ignore"):
+                t2 = df * np.expm1(max(rise, 0.0) / n)
+            out.append(WaldCheck(j, side, rise, expected, float(2 * stats.t.cdf(np.sqrt(t2), df) - 1)))
+    return out
