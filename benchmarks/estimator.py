@@ -134,7 +134,7 @@ def truth_objective(template: str, seed: int) -> tuple[float, int]:
     phi = prob.to_phi(np.array([truth[n] for n in prob.names]))
     f, _ = prob.predict(phi)
     y, k, cens = prob.values, prob.obs_index, prob.censored
-    floor = 1e-9 * float(np.max(np.abs(y)))
+    floor = prob.floor
     eta = initial_eta("proportional", y, f, k, cens, len(model.observable_names), floor)
     return float(neg2ll("proportional", y, f, eta, k, cens, floor).value), len(prob.names)
 

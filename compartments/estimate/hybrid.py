@@ -110,7 +110,7 @@ def _network_stage(seed: int, options: Mapping[str, Any] | None) -> Any:
 def _objective(problem: Problem, phi: Array) -> tuple[float, Array]:
     """−2LL at ``phi`` with moment estimates of the error parameters."""
     y, cens, k = problem.values, problem.censored, problem.obs_index
-    floor = 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+    floor = problem.floor
     f, _ = problem.predict(phi)
     eta = initial_eta(problem.error, y, f, k, cens, len(problem.model.observable_names), floor)
     return neg2ll(problem.error, y, f, eta, k, cens, floor).value, eta
@@ -131,7 +131,7 @@ def _flip_flop(problem: Problem, phi: Array, eta: Array, obj: float) -> tuple[Ar
         return phi, None
     tphi = problem.to_phi(twin)
     y, cens, k = problem.values, problem.censored, problem.obs_index
-    floor = 1e-9 * max(float(np.max(np.abs(y))), 1e-300)
+    floor = problem.floor
     f, _ = problem.predict(tphi)
     tobj = neg2ll(problem.error, y, f, eta, k, cens, floor).value
     if not abs(tobj - obj) <= 1e-6 * (1 + abs(obj)):
@@ -360,7 +360,7 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
 
     # -- residuals -----------------------------------------------------------------------
     y, cens, k = problem.values, problem.censored, problem.obs_index
-    floor = 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+    floor = problem.floor
     f, _ = problem.predict(phi)
     sd, _, _ = _sd(error, f, eta, k, floor)
     if error == "lognormal":
@@ -453,8 +453,8 @@ def _profiles(problem: Problem, phi: Array, obj: float, unc: Uncertainty) -> dic
 def _bootstrap(problem: Problem, phi: Array, eta: Array, n_boot: int, seed: int, level: float) -> dict[str, Any]:
     """Parametric bootstrap: simulate from the estimate and its error model, refit."""
     rng = np.random.default_rng(seed)
-    y, k = problem.values, problem.obs_index
-    floor = 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+    k = problem.obs_index
+    floor = problem.floor
     f, _ = problem.predict(phi)
     sd, _, _ = _sd(problem.error, f, eta, k, floor)
     lloq = np.concatenate([d.lloq for d in problem.data])

@@ -108,7 +108,7 @@ class LikelihoodStage:
                                (), None, wall, 0, "failed", f"the likelihood fit failed from every start: {msg}")
         results.sort(key=lambda r: r[1])
         phi, obj, eta, nit, ok, msg = results[0]
-        if profiled_form(problem) is None:
+        if profiled_form(problem) is None or not ok:
             phi, eta, obj, it2, converged = self._newton(problem, phi, eta, obj)
             nit += it2
             if converged and not ok:
@@ -132,7 +132,7 @@ class LikelihoodStage:
         k = problem.obs_index
         n_kinds = len(problem.model.observable_names)
         err = problem.error
-        floor = _floor(problem)
+        floor = problem.floor
         pred, cache = _predictor(problem)
 
         # weights of the first round: per-observable scale (additive, combined), the data
@@ -254,17 +254,11 @@ class LikelihoodStage:
         lo, hi = problem.phi_bounds
         nphi = phi.size
         pred, _ = _predictor(problem)
-        fg = _joint_objective(problem, pred, _floor(problem))
+        fg = _joint_objective(problem, pred, problem.floor)
         x = np.concatenate([phi, eta])
         with np.errstate(all="ignore"):
             x, fx, nit, converged = newton_polish(fg, x, obj, np.r_[lo, eta - 25.0], np.r_[hi, eta + 25.0])
         return x[:nphi], x[nphi:], fx, nit, converged
-
-
-def _floor(problem: Problem) -> float:
-    """Predictions below this count as zero (relative to the largest observed value)."""
-    y = problem.values
-    return 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
 
 
 def _predictor(problem: Problem):
@@ -316,8 +310,9 @@ def newton_polish(fg, x: Array, fx: float, lo: Array, hi: Array, max_iter: int =
     method stops short of the optimum on long curved valleys (measured on predator–prey with
     both species counted: −2LL 0.01–0.1 above the best of a 50-start multistart); a few
     Newton steps converge quadratically there. Steps are Levenberg-damped until they lower
-    the value; the loop ends when the predicted decrease is below 1e-10 (converged), when no
-    damping helps, or after ``max_iter`` steps.
+    the value; the loop ends when the Hessian is positive definite and the predicted decrease
+    is below 1e-10 (converged: a local minimum), when no damping helps, or after ``max_iter``
+    steps.
     """
     def grad(z: Array) -> Array:
         return fg(z)[1]
@@ -338,7 +333,7 @@ def newton_polish(fg, x: Array, fx: float, lo: Array, hi: Array, max_iter: int =
                 lam = max(lam * 10, 1e-8)
                 continue
             predicted = -(g @ step + 0.5 * step @ H @ step)
-            if lam == 0.0 and 0 <= predicted < 1e-10 * (1 + abs(fx)):
+            if lam == 0.0 and 0 <= predicted < 1e-10 * (1 + abs(fx)) and _positive_definite(H):
                 return x, fx, nit, True
             xn = np.clip(x + step, lo, hi)
             fn = fg(xn)[0]
@@ -349,3 +344,11 @@ def newton_polish(fg, x: Array, fx: float, lo: Array, hi: Array, max_iter: int =
         if not moved:
             return x, fx, nit, False
     return x, fx, nit, False
+
+
+def _positive_definite(H: Array) -> bool:
+    try:
+        np.linalg.cholesky(H)
+    except np.linalg.LinAlgError:
+        return False
+    return True

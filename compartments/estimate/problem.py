@@ -153,6 +153,12 @@ class Problem:
         return np.concatenate([d.values for d in self.data]) if self.data else np.zeros(0)
 
     @property
+    def floor(self) -> float:
+        """Predictions below this count as zero in the likelihood (1e-9 of the largest |value|)."""
+        y = self.values
+        return 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+
+    @property
     def censored(self) -> NDArray[np.bool_]:
         return np.concatenate([d.censored for d in self.data]) if self.data else np.zeros(0, bool)
 

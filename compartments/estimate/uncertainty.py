@@ -78,8 +78,7 @@ def estimate_uncertainty(problem: Problem, phi: Array, eta: Array, level: float 
     k = phi.size
     n = problem.n_obs
     y, cens, idx, err = problem.values, problem.censored, problem.obs_index, problem.error
-    scale = max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
-    floor = 1e-9 * scale
+    floor = problem.floor
     f, J = problem.predict(phi, jacobian=True)
     assert J is not None
     n_err = eta.size
@@ -259,7 +258,7 @@ def check_wald_intervals(problem: Problem, phi: Array, eta: Array, unc: Uncertai
         return []
     expected = float(n * np.log1p(q * q / df))
     y, cens, idx, err = problem.values, problem.censored, problem.obs_index, problem.error
-    floor = 1e-9 * max(float(np.max(np.abs(y))) if y.size else 1.0, 1e-300)
+    floor = problem.floor
     n_kinds = len(problem.model.observable_names)
     lo_b, hi_b = problem.phi_bounds
     out = []
