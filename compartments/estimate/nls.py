@@ -311,13 +311,16 @@ def newton_polish(fg, x: Array, fx: float, lo: Array, hi: Array, max_iter: int =
     both species counted: −2LL 0.01–0.1 above the best of a 50-start multistart); a few
     Newton steps converge quadratically there. Steps are Levenberg-damped until they lower
     the value; the loop ends when the Hessian is positive definite and the predicted decrease
-    is below 1e-10 (converged: a local minimum), when no damping helps, or after ``max_iter``
-    steps.
+    is below 1e-10 (converged: a local minimum), when two steps in a row change the value by
+    less than 1e-9 relative (converged in the objective along a flat valley; the parameters
+    that move along it are then flagged by the uncertainty step), when no damping helps, or
+    after ``max_iter`` steps.
     """
     def grad(z: Array) -> Array:
         return fg(z)[1]
 
     nit = 0
+    flat = 0  # accepted steps in a row that changed the value by less than 1e-9 (relative)
     for nit in range(1, max_iter + 1):
         g = grad(x)
         H = hessian(grad, x)
@@ -338,11 +341,14 @@ def newton_polish(fg, x: Array, fx: float, lo: Array, hi: Array, max_iter: int =
             xn = np.clip(x + step, lo, hi)
             fn = fg(xn)[0]
             if np.isfinite(fn) and fn < fx:
+                flat = flat + 1 if fx - fn < 1e-9 * (1 + abs(fx)) else 0
                 x, fx, moved = xn, float(fn), True
                 break
             lam = max(lam * 10, 1e-8)
         if not moved:
             return x, fx, nit, False
+        if flat >= 2:  # the value has settled along a flat valley: converged in the objective
+            return x, fx, nit, True
     return x, fx, nit, False
 
 
