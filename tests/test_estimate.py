@@ -353,3 +353,36 @@ class TestWaldIntervalCheck:
         s = synthetic("one-comp-oral", self.truth, [Dose(0, 300, "oral")], times, noise=0.03, seed=1)
         r = fit(s, "one-comp-oral", error="proportional", strategy=STRATEGY)
         assert not any("too narrow" in w for w in r.warnings), r.warnings
+
+
+class TestNewtonPolish:
+    """The last steps of the likelihood fit (compartments.estimate.nls.newton_polish)."""
+
+    def test_rosenbrock_valley(self):
+        """Rosenbrock's curved valley from the classic start (−1.2, 1): the minimum is at (1, 1)
+        (Rosenbrock 1960; scipy.optimize.rosen and rosen_der as reference)."""
+        from scipy.optimize import rosen, rosen_der
+
+        from compartments.estimate.nls import newton_polish
+
+        x0 = np.array([-1.2, 1.0])
+        x, fx, _, converged = newton_polish(lambda z: (rosen(z), rosen_der(z)), x0, rosen(x0),
+                                            np.full(2, -5.0), np.full(2, 5.0), max_iter=100)
+        assert converged
+        np.testing.assert_allclose(x, [1.0, 1.0], atol=1e-6)
+        assert fx < 1e-12
+
+    def test_flat_valley_converges_in_the_value(self):
+        """f = (x − 1)² + 1e-8·y⁴ is nearly flat along y: Newton shrinks y by a third per step
+        (y ← 2y/3 for a quartic, by hand), so the value settles long before y reaches 0; the
+        polish must stop there as converged within a few steps rather than spend its budget
+        (the direction is left to the uncertainty step to flag)."""
+        from compartments.estimate.nls import newton_polish
+
+        def fg(z):
+            return (z[0] - 1) ** 2 + 1e-8 * z[1] ** 4, np.array([2 * (z[0] - 1), 4e-8 * z[1] ** 3])
+
+        x0 = np.array([3.0, 2.0])
+        x, fx, nit, converged = newton_polish(fg, x0, fg(x0)[0], np.full(2, -10.0), np.full(2, 10.0))
+        assert converged and nit < 12
+        assert x[0] == pytest.approx(1.0, abs=1e-8) and fx < 2e-7 and 0.05 < x[1] < 2.0
