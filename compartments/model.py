@@ -138,19 +138,11 @@ class Model:
     def rhs(self, x: Array, theta: Array) -> Array:
         return self._f(*x, *theta).reshape(-1)
 
-    def rhs_augmented(self, z: Array, theta: Array, sensitivities: bool) -> Array:
-        """``f`` (or ``[f; f_x S + f_θ]`` with S stored parameter-major in ``z[n:]``) as one
-        generated call: the integrator's inner loop."""
-        if sensitivities:
-            assert self._aug is not None
-            return np.asarray(self._aug(*z, *theta), dtype=float)
-        assert self._flat is not None
-        return np.asarray(self._flat(*z, *theta), dtype=float)
-
     def rhs_point(self, theta: Array, sensitivities: bool) -> Callable[[Array], Array]:
-        """``rhs_augmented`` at fixed ``theta`` for one state vector, for an integrator's
-        inner loop: the generated code runs on Python floats, which is about twice as fast
-        as on NumPy scalars for these small expressions."""
+        """``z -> f`` (or ``[f; f_x S + f_θ]`` with S stored parameter-major in ``z[n:]``) at
+        fixed ``theta``, as one generated call: the integrator's inner loop. The generated
+        code runs on Python floats, about twice as fast as on NumPy scalars for these small
+        expressions (benchmarks/ode_driver.py)."""
         fn = self._aug if sensitivities else self._flat
         assert fn is not None
         th = [float(v) for v in theta]
