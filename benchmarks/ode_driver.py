@@ -42,6 +42,7 @@ def main() -> None:
     print()
     print("| template | odeint ms | solve_ivp ms | ratio | max rel diff (obs) | max rel diff (sens) |")
     print("|---|---|---|---|---|---|")
+    calls = []
     for name, (doses, horizon) in CASES.items():
         t = load_template(name)
         m = compiled(t)
@@ -66,6 +67,27 @@ def main() -> None:
             d_sens = max(d_sens, float(np.max(np.abs(sa - sb) / scale)))
         n = args.problems
         print(f"| {name} | {1e3 * t_a / n:.2f} | {1e3 * t_b / n:.2f} | {t_b / t_a:.1f}× | {d_obs:.1e} | {d_sens:.1e} |")
+        calls.append((name, *_rhs_call_times(m)))
+    print()
+    print("One call of the generated right-hand side with sensitivities, on NumPy scalars (as")
+    print("`np.asarray(f(*z, *θ))`) and on Python floats (`Model.rhs_point`), side by side:")
+    print()
+    print("| template | NumPy scalars µs | Python floats µs | ratio |")
+    print("|---|---|---|---|")
+    for name, a, b in calls:
+        print(f"| {name} | {a:.2f} | {b:.2f} | {a / b:.1f}× |")
+
+
+def _rhs_call_times(m, repeat: int = 20_000) -> tuple[float, float]:
+    import timeit
+
+    theta = m.param_vector(None)
+    z = np.linspace(0.5, 1.5, m.n_states * (m.n_params + 1))
+    fast = m.rhs_point(theta, True)
+    aug = m._aug
+    a = min(timeit.repeat(lambda: np.asarray(aug(*z, *theta), dtype=float), number=repeat, repeat=3)) / repeat
+    b = min(timeit.repeat(lambda: fast(z), number=repeat, repeat=3)) / repeat
+    return 1e6 * a, 1e6 * b
 
 
 if __name__ == "__main__":
