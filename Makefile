@@ -34,6 +34,7 @@ lint: $(TSTAMP)
 
 bench: $(TSTAMP)
 	$(BIN)/python benchmarks/simulate.py
+	$(BIN)/python benchmarks/ode_driver.py
 	$(BIN)/python benchmarks/estimator.py
 	$(BIN)/python benchmarks/cohort.py
 
