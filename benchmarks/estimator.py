@@ -189,6 +189,17 @@ def coverage_one(seed):
     return {k: (r.ci[k][0] <= v <= r.ci[k][1]) for k, v in truth.items()}
 
 
+def _percent_table(rows: list[tuple], strategies: tuple[str, ...], column: int) -> None:
+    """Per template and overall: the share of fits whose ``row[column]`` is true, by strategy."""
+    print("| template | " + " | ".join(strategies) + " |")
+    print("|---|" + "---|" * len(strategies))
+    for t in TEMPLATES + ("all",):
+        sel = [r for r in rows if t == "all" or r[0] == t]
+        if sel:
+            print(f"| {t} | " + " | ".join(
+                f"{100 * np.mean([r[column] for r in sel if r[1] == s]):.0f} %" for s in strategies) + " |")
+
+
 def summarize(results: list[dict], cov: list[dict], strategies: tuple[str, ...], header: str) -> None:
     """Print the success and timing tables from finished problems (partial runs too)."""
     rows = []
@@ -223,13 +234,7 @@ def summarize(results: list[dict], cov: list[dict], strategies: tuple[str, ...],
         print("The same, with the 3-SE check on the scale each parameter is fitted and its interval built "
               "(log scale for log-fitted parameters: |log(estimate/truth)| ≤ 3·SE/estimate):")
         print()
-        print("| template | " + " | ".join(strategies) + " |")
-        print("|---|" + "---|" * len(strategies))
-        for t in TEMPLATES + ("all",):
-            sel = [r for r in rows if t == "all" or r[0] == t]
-            if sel:
-                print(f"| {t} | " + " | ".join(
-                    f"{100 * np.mean([r[5] for r in sel if r[1] == s]):.0f} %" for s in strategies) + " |")
+        _percent_table(rows, strategies, 5)
     if results:
         from scipy import stats
 
@@ -248,13 +253,7 @@ def summarize(results: list[dict], cov: list[dict], strategies: tuple[str, ...],
     print()
     print("Optimisation alone — the fit reached the best −2LL any strategy found (within 1e-6):")
     print()
-    print("| template | " + " | ".join(strategies) + " |")
-    print("|---|" + "---|" * len(strategies))
-    for t in TEMPLATES + ("all",):
-        sel = [r for r in rows if t == "all" or r[0] == t]
-        if sel:
-            print(f"| {t} | " + " | ".join(
-                f"{100 * np.mean([r[4] for r in sel if r[1] == s]):.0f} %" for s in strategies) + " |")
+    _percent_table(rows, strategies, 4)
     print()
     far = [(res["template"], f) for res in results for s, f in res["fits"].items()
            if s == "hybrid" and f.get("far")]
