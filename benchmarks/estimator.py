@@ -124,19 +124,13 @@ def truth_objective(template: str, seed: int) -> tuple[float, int]:
     """−2LL at the true parameters with the error scales at their maximum-likelihood values
     (the fit's objective, evaluated at the truth), and the number of structural parameters."""
     from compartments import load_template
-    from compartments.estimate.likelihood import initial_eta, neg2ll
     from compartments.estimate.problem import make_problem as estimation_problem
     from compartments.model import compiled
 
     truth, subj = make_problem(template, seed)
-    model = compiled(load_template(template))
-    prob = estimation_problem(model, [subj], error="proportional")
-    phi = prob.to_phi(np.array([truth[n] for n in prob.names]))
-    f, _ = prob.predict(phi)
-    y, k, cens = prob.values, prob.obs_index, prob.censored
-    floor = prob.floor
-    eta = initial_eta("proportional", y, f, k, cens, len(model.observable_names), floor)
-    return float(neg2ll("proportional", y, f, eta, k, cens, floor).value), len(prob.names)
+    prob = estimation_problem(compiled(load_template(template)), [subj], error="proportional")
+    value, _, _ = prob.moment_objective(prob.to_phi(np.array([truth[n] for n in prob.names])))
+    return value, len(prob.names)
 
 
 def _names_as_uncertain(warning: str, name: str) -> bool:

@@ -28,7 +28,7 @@ from ..errors import CompartmentsError, FitError, UsageError
 from ..model import compiled
 from ..results import DerivedValue, FitResult, Residuals
 from ..template import Template
-from .likelihood import _sd, error_parameter_names, initial_eta, neg2ll
+from .likelihood import _sd, error_parameter_names, neg2ll
 from .nls import LikelihoodStage, is_plain_least_squares
 from .problem import Problem, make_problem
 from .stages import StageResult
@@ -109,11 +109,8 @@ def _network_stage(seed: int, options: Mapping[str, Any] | None) -> Any:
 
 def _objective(problem: Problem, phi: Array) -> tuple[float, Array]:
     """−2LL at ``phi`` with moment estimates of the error parameters."""
-    y, cens, k = problem.values, problem.censored, problem.obs_index
-    floor = problem.floor
-    f, _ = problem.predict(phi)
-    eta = initial_eta(problem.error, y, f, k, cens, len(problem.model.observable_names), floor)
-    return neg2ll(problem.error, y, f, eta, k, cens, floor).value, eta
+    value, eta, _ = problem.moment_objective(phi)
+    return value, eta
 
 
 def _flip_flop(problem: Problem, phi: Array, eta: Array, obj: float) -> tuple[Array, dict[str, float] | None]:

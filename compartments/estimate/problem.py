@@ -21,6 +21,7 @@ from ..dosing import Dose
 from ..errors import FitError, UsageError
 from ..model import Model
 from ..simulate import simulate
+from .likelihood import initial_eta, neg2ll
 
 Array = NDArray[np.float64]
 
@@ -165,6 +166,14 @@ class Problem:
     @property
     def obs_index(self) -> NDArray[np.int64]:
         return np.concatenate([d.obs_index for d in self.data]) if self.data else np.zeros(0, np.int64)
+
+    def moment_objective(self, phi: Array) -> tuple[float, Array, Array]:
+        """−2LL at ``phi`` with the error parameters at their moment estimates (exact maximum
+        likelihood for one scale per observable without censoring): (value, eta, predictions)."""
+        y, cens, k = self.values, self.censored, self.obs_index
+        f, _ = self.predict(phi)
+        eta = initial_eta(self.error, y, f, k, cens, len(self.model.observable_names), self.floor)
+        return float(neg2ll(self.error, y, f, eta, k, cens, self.floor).value), eta, f
 
     def predict(self, phi: Array, jacobian: bool = False) -> tuple[Array, Array | None]:
         """Predictions for every observation (concatenated over subjects) and ∂f/∂φ."""

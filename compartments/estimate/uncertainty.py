@@ -31,7 +31,7 @@ from scipy.optimize import brentq
 
 from ..errors import CompartmentsError
 from .derivatives import hessian
-from .likelihood import initial_eta, neg2ll
+from .likelihood import neg2ll
 from .nls import is_plain_least_squares
 from .problem import Problem
 
@@ -259,7 +259,6 @@ def check_wald_intervals(problem: Problem, phi: Array, eta: Array, unc: Uncertai
     expected = float(n * np.log1p(q * q / df))
     y, cens, idx, err = problem.values, problem.censored, problem.obs_index, problem.error
     floor = problem.floor
-    n_kinds = len(problem.model.observable_names)
     lo_b, hi_b = problem.phi_bounds
     out = []
     for j in range(phi.size):
@@ -272,12 +271,12 @@ def check_wald_intervals(problem: Problem, phi: Array, eta: Array, unc: Uncertai
                 continue  # the interval leaves the template's bounds: the bound warning covers it
             p = np.clip(p, lo_b, hi_b)
             try:
-                f, _ = problem.predict(p)
+                with np.errstate(all="ignore"):
+                    at_moments, _, f = problem.moment_objective(p)
+                    at_estimate = neg2ll(err, y, f, eta, idx, cens, floor).value
             except CompartmentsError:
                 continue
-            eta_m = initial_eta(err, y, f, idx, cens, n_kinds, floor)
-            with np.errstate(all="ignore"):
-                rise = float(np.nanmin([neg2ll(err, y, f, e, idx, cens, floor).value for e in (eta, eta_m)])) - best
+            rise = float(np.nanmin([at_estimate, at_moments])) - best
             if not np.isfinite(rise):
                 continue
             with np.errstate(over="ignore"):
