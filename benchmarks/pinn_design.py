@@ -22,6 +22,11 @@ trained with Adam then L-BFGS in torch, parameters squashed into their bounds) o
 first N one-compartment oral problems, for the design notes in
 :mod:`compartments.estimate.pinn`.
 
+``--compare-backend N`` times the stage's linear-algebra core (normal equations, Cholesky
+solve, projected Jacobian) on the matrices of N problems per template, in NumPy/SciPy and in
+torch (float64, one thread, tensors built outside the timing), beside the whole profiled
+evaluation it is part of: the measurement behind keeping this stage in NumPy.
+
 ``--ablation N`` changes one setting at a time (physics weight, continuation, polish,
 hidden units, no screening) on N problems per template; ``--representation N`` reports
 the profiled loss at the likelihood optimum with the log clock or the log-state
@@ -29,7 +34,7 @@ representation switched off (the loss is ~ the exact misfit when the hidden laye
 represents the solution well).
 
 Usage: python benchmarks/pinn_design.py [--per-template N] [--hard] [--compare-trained N]
-       [--ablation N] [--representation N] [--templates a,b]
+       [--ablation N] [--representation N] [--compare-backend N] [--templates a,b]
 """
 
 from __future__ import annotations
@@ -445,6 +450,73 @@ def representation(per_template: int) -> None:
             print(f"{name:14s} {label:22s} {np.median(losses):9.3g} {np.max(losses):9.3g}  ({exact:.3g})", flush=True)
 
 
+def _best_of(fn, repeat: int = 7, number: int = 50) -> float:
+    """Least mean time of ``fn`` (s) over ``repeat`` rounds of ``number`` calls."""
+    fn()
+    best = np.inf
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        for _ in range(number):
+            fn()
+        best = min(best, (time.perf_counter() - t0) / number)
+    return best
+
+
+def compare_backend(per_template: int, templates=TEMPLATES) -> None:
+    """The stage's linear-algebra core in NumPy/SciPy and in torch, same matrices, one thread."""
+    import torch
+    from scipy.linalg import cho_factor, cho_solve
+
+    from compartments.estimate.collocation import Collocation
+
+    torch.set_num_threads(1)
+    print(f"{'template':14s} {'Jz shape':>10s} {'numpy µs':>9s} {'torch µs':>9s} {'torch/numpy':>12s} "
+          f"{'profile µs':>11s} {'core share':>11s} {'elem np':>8s} {'elem pt':>8s} {'ratio':>8s}")
+    for name in templates:
+        rows = []
+        for k in range(per_template):
+            problem, theta_full = make_problem(name, k)
+            col = Collocation(problem)
+            phi = problem.to_phi(theta_full[list(problem.free)])
+            sub = col.subjects[0]
+            lam = col.settings.physics_weight
+            lay = sub.layout(theta_full)
+            ctx = sub.context(theta_full, lay, True, lam)
+            z = sub.solve(theta_full, None, True, lam)[2]
+            r, Jz, _ = sub.residual(z, ctx, lay, True, False)
+            Jt = sub.residual(z, ctx, lay, False, True)[2]
+
+            def core_numpy():
+                fac = cho_factor(Jz.T @ Jz, check_finite=False)
+                step = cho_solve(fac, Jz.T @ r, check_finite=False)
+                proj = cho_solve(fac, Jz.T @ Jt, check_finite=False)
+                return step, Jt - Jz @ proj
+
+            tz, tr, tt = (torch.from_numpy(np.ascontiguousarray(a)) for a in (Jz, r, Jt))
+
+            def core_torch():
+                L = torch.linalg.cholesky(tz.T @ tz)
+                step = torch.cholesky_solve((tz.T @ tr)[:, None], L)
+                proj = torch.cholesky_solve(tz.T @ tt, L)
+                return step, tt - tz @ proj
+
+            a, b = core_numpy(), core_torch()
+            assert np.allclose(a[1], b[1].numpy(), rtol=1e-6, atol=1e-8 * np.abs(a[1]).max())
+            t_np, t_torch = _best_of(core_numpy), _best_of(core_torch)
+            t_prof = _best_of(lambda: col.profile(phi, jacobian=True), number=10)
+            # one elementwise line of the residual assembly (physics rows), on arrays of its size
+            e = [np.ascontiguousarray(r[: Jz.shape[0] // 2]) + i for i in range(4)]
+            te = [torch.from_numpy(x) for x in e]
+            t_el = _best_of(lambda: e[0] * (e[1] - 0.5 * e[2] / e[3]), number=200)
+            t_el_torch = _best_of(lambda: te[0] * (te[1] - 0.5 * te[2] / te[3]), number=200)
+            rows.append((Jz.shape, t_np, t_torch, t_prof, t_el, t_el_torch))
+        shape = max(r[0] for r in rows)
+        t_np, t_torch, t_prof, t_el, t_el_torch = (np.median([r[i] for r in rows]) for i in (1, 2, 3, 4, 5))
+        print(f"{name:14s} {f'{shape[0]}×{shape[1]}':>10s} {1e6 * t_np:9.1f} {1e6 * t_torch:9.1f} "
+              f"{t_torch / t_np:11.2f}× {1e6 * t_prof:11.1f} {t_np / t_prof:10.0%} "
+              f"{1e6 * t_el:8.2f} {1e6 * t_el_torch:8.2f} {t_el_torch / t_el:7.2f}×", flush=True)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--per-template", type=int, default=10)
@@ -454,6 +526,8 @@ def main() -> None:
     ap.add_argument("--ablation", type=int, default=0, metavar="N", help="one-setting-off runs, N problems each")
     ap.add_argument("--representation", type=int, default=0, metavar="N",
                     help="profiled loss at the optimum with devices off, N problems each")
+    ap.add_argument("--compare-backend", type=int, default=0, metavar="N",
+                    help="linear-algebra core in NumPy vs torch, N problems per template")
     args = ap.parse_args()
     warnings.filterwarnings("ignore")
     if args.per_template > 0:
@@ -464,6 +538,8 @@ def main() -> None:
         ablation(args.ablation, tuple(args.templates.split(",")), args.hard)
     if args.representation:
         representation(args.representation)
+    if args.compare_backend:
+        compare_backend(args.compare_backend, tuple(args.templates.split(",")))
 
 
 if __name__ == "__main__":

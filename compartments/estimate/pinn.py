@@ -69,6 +69,13 @@ Why this design:
   one-compartment oral subject and ended with ka at or near its lower bound in 5 of 5
   (exact misfit 5× and 970× the optimum in the two checked); this stage took
   0.08–0.15 s and was within 5 % of the optimum in all five.
+* **NumPy, not torch tensors.** Nothing here needs automatic differentiation (the outer
+  Jacobian is the projected one above, in closed form), and at these sizes (Jacobians of
+  50–265 rows × 16–96 columns) torch costs more per operation: on the stage's own
+  matrices the linear-algebra core (normal equations, Cholesky solve, projection) took
+  1.4–1.8× as long in torch (float64, one thread) and one elementwise line of the
+  residual assembly 3.4–4.1× (``--compare-backend``); the assembly is most of an
+  evaluation (the core is 1–20 % of it).
 * **Chebyshev polynomials, not random tanh features.** With 16 random tanh units
   (slopes 1–40, random centres) the profiled loss at the true parameters of noiseless
   one-compartment oral data varied by four orders of magnitude between seeds (median
