@@ -48,6 +48,7 @@ os.environ.setdefault("MKL_NUM_THREADS", "1")
 import argparse  # noqa: E402
 import time  # noqa: E402
 import warnings  # noqa: E402
+from functools import partial  # noqa: E402
 
 import numpy as np  # noqa: E402
 
@@ -462,10 +463,34 @@ def _best_of(fn, repeat: int = 7, number: int = 50) -> float:
     return best
 
 
+def _core_numpy(Jz, r, Jt):
+    """Inner step and projected θ-Jacobian, as in ``Collocation.solve`` (NumPy/SciPy)."""
+    from scipy.linalg import cho_factor, cho_solve
+
+    fac = cho_factor(Jz.T @ Jz, check_finite=False)
+    step = cho_solve(fac, Jz.T @ r, check_finite=False)
+    proj = cho_solve(fac, Jz.T @ Jt, check_finite=False)
+    return step, Jt - Jz @ proj
+
+
+def _core_torch(Jz, r, Jt):
+    """The same in torch."""
+    import torch
+
+    L = torch.linalg.cholesky(Jz.T @ Jz)
+    step = torch.cholesky_solve((Jz.T @ r)[:, None], L)
+    proj = torch.cholesky_solve(Jz.T @ Jt, L)
+    return step, Jt - Jz @ proj
+
+
+def _elementwise(a, b, c, d):
+    """One line of the residual assembly's shape (``pw * (D − dtds·rate/div)``)."""
+    return a * (b - 0.5 * c / d)
+
+
 def compare_backend(per_template: int, templates=TEMPLATES) -> None:
     """The stage's linear-algebra core in NumPy/SciPy and in torch, same matrices, one thread."""
     import torch
-    from scipy.linalg import cho_factor, cho_solve
 
     from compartments.estimate.collocation import Collocation
 
@@ -486,29 +511,16 @@ def compare_backend(per_template: int, templates=TEMPLATES) -> None:
             r, Jz, _ = sub.residual(z, ctx, lay, True, False)
             Jt = sub.residual(z, ctx, lay, False, True)[2]
 
-            def core_numpy():
-                fac = cho_factor(Jz.T @ Jz, check_finite=False)
-                step = cho_solve(fac, Jz.T @ r, check_finite=False)
-                proj = cho_solve(fac, Jz.T @ Jt, check_finite=False)
-                return step, Jt - Jz @ proj
-
-            tz, tr, tt = (torch.from_numpy(np.ascontiguousarray(a)) for a in (Jz, r, Jt))
-
-            def core_torch():
-                L = torch.linalg.cholesky(tz.T @ tz)
-                step = torch.cholesky_solve((tz.T @ tr)[:, None], L)
-                proj = torch.cholesky_solve(tz.T @ tt, L)
-                return step, tt - tz @ proj
-
+            core_numpy = partial(_core_numpy, Jz, r, Jt)
+            core_torch = partial(_core_torch, *(torch.from_numpy(np.ascontiguousarray(a)) for a in (Jz, r, Jt)))
             a, b = core_numpy(), core_torch()
             assert np.allclose(a[1], b[1].numpy(), rtol=1e-6, atol=1e-8 * np.abs(a[1]).max())
             t_np, t_torch = _best_of(core_numpy), _best_of(core_torch)
-            t_prof = _best_of(lambda: col.profile(phi, jacobian=True), number=10)
+            t_prof = _best_of(partial(col.profile, phi, jacobian=True), number=10)
             # one elementwise line of the residual assembly (physics rows), on arrays of its size
             e = [np.ascontiguousarray(r[: Jz.shape[0] // 2]) + i for i in range(4)]
-            te = [torch.from_numpy(x) for x in e]
-            t_el = _best_of(lambda: e[0] * (e[1] - 0.5 * e[2] / e[3]), number=200)
-            t_el_torch = _best_of(lambda: te[0] * (te[1] - 0.5 * te[2] / te[3]), number=200)
+            t_el = _best_of(partial(_elementwise, *e), number=200)
+            t_el_torch = _best_of(partial(_elementwise, *(torch.from_numpy(x) for x in e)), number=200)
             rows.append((Jz.shape, t_np, t_torch, t_prof, t_el, t_el_torch))
         shape = max(r[0] for r in rows)
         t_np, t_torch, t_prof, t_el, t_el_torch = (np.median([r[i] for r in rows]) for i in (1, 2, 3, 4, 5))
