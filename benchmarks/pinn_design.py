@@ -27,6 +27,9 @@ solve, projected Jacobian) on the matrices of N problems per template, in NumPy/
 torch (float64, one thread, tensors built outside the timing), beside the whole profiled
 evaluation it is part of: the measurement behind keeping this stage in NumPy.
 
+``--positivity N`` reports how far the amount-state trajectories (linear in the output
+weights, so not positive by construction) dip below zero at the stage's returned point.
+
 ``--ablation N`` changes one setting at a time (physics weight, continuation, polish,
 hidden units, no screening) on N problems per template; ``--representation N`` reports
 the profiled loss at the likelihood optimum with the log clock or the log-state
@@ -34,7 +37,8 @@ representation switched off (the loss is ~ the exact misfit when the hidden laye
 represents the solution well).
 
 Usage: python benchmarks/pinn_design.py [--per-template N] [--hard] [--compare-trained N]
-       [--ablation N] [--representation N] [--compare-backend N] [--templates a,b]
+       [--ablation N] [--representation N] [--compare-backend N] [--positivity N]
+       [--templates a,b]
 """
 
 from __future__ import annotations
@@ -529,6 +533,42 @@ def compare_backend(per_template: int, templates=TEMPLATES) -> None:
               f"{1e6 * t_el:8.2f} {1e6 * t_el_torch:8.2f} {t_el_torch / t_el:7.2f}×", flush=True)
 
 
+def positivity(per_template: int, templates=TEMPLATES) -> None:
+    """Lowest value of the amount states along the stage's trajectory, relative to their peak.
+
+    Amount states are linear in the output weights (not positive by construction); this
+    reports how far below zero the fitted trajectories dip, at the stage's returned point,
+    on 400 points per piece.
+    """
+    from compartments.estimate.collocation import Collocation, _chebyshev_features
+    from compartments.estimate.pinn import NetworkStage
+
+    print(f"{'template':22s} {'median min/max':>15s} {'worst min/max':>14s} {'below −1 %':>11s}")
+    for hard in (False, True):
+        for name in templates:
+            ratios = []
+            for k in range(per_template):
+                problem, _ = make_problem(name, k, hard)
+                res = NetworkStage(seed=0).run(problem, [problem.default_phi])
+                col = Collocation(problem)
+                sub = col.subjects[0]
+                theta = problem.full_theta(res.phi)
+                z = sub.solve(theta, None, False, col.settings.physics_weight)[2]
+                amounts = ~sub.log_state
+                if not amounts.any():
+                    continue
+                lay = sub.layout(theta)
+                basis, _ = _chebyshev_features(np.linspace(-1.0, 1.0, 400), col.M)
+                X = np.einsum("qim,km->iqk", z.reshape(lay.n_pieces, col.n, col.M), basis)[amounts]
+                ratios.append(float(X.min() / max(X.max(), 1e-300)))
+            label = name + (" (hard)" if hard else "")
+            if not ratios:
+                print(f"{label:22s} {'no amount states':>15s}")
+                continue
+            r = np.array(ratios)
+            print(f"{label:22s} {np.median(r):15.2g} {r.min():14.2g} {np.sum(r < -0.01):7d}/{r.size}", flush=True)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--per-template", type=int, default=10)
@@ -540,6 +580,8 @@ def main() -> None:
                     help="profiled loss at the optimum with devices off, N problems each")
     ap.add_argument("--compare-backend", type=int, default=0, metavar="N",
                     help="linear-algebra core in NumPy vs torch, N problems per template")
+    ap.add_argument("--positivity", type=int, default=0, metavar="N",
+                    help="how far the amount-state trajectories dip below zero, N problems per template")
     args = ap.parse_args()
     warnings.filterwarnings("ignore")
     if args.per_template > 0:
@@ -550,6 +592,8 @@ def main() -> None:
         ablation(args.ablation, tuple(args.templates.split(",")), args.hard)
     if args.representation:
         representation(args.representation)
+    if args.positivity:
+        positivity(args.positivity, tuple(args.templates.split(",")))
     if args.compare_backend:
         compare_backend(args.compare_backend, tuple(args.templates.split(",")))
 

@@ -35,6 +35,14 @@ Devices (see the measurements in :mod:`compartments.estimate.pinn`):
   largest observation, largest initial amount). States that start positive, receive no
   dose and are non-negative (populations) are represented through their logarithm (an
   ``exp`` output: positive by construction, and oscillating populations become smooth).
+  Amount states (doses arrive in them, or they start at zero) stay linear in the output
+  weights, so they are not positive by construction: an ``exp`` or softplus output would
+  turn every inner solve of a linear model from one least-squares solve into an iterative
+  one. The physics and data rows keep them near zero from below: at the stage's returned
+  point the lowest value along the trajectory was within 0.02 % of the peak on the regular
+  problem sets and reached −10 % of the peak in 3 of 60 hard problems
+  (``benchmarks/pinn_design.py --positivity``); the likelihood stage that follows works on
+  the exact solution, which is positive.
 * **Residuals in data units.** The ODE residual of an amount state is multiplied by the
   gain from the states to the data, ``γ(θ) = S·sqrt(Σ_o Σ_i (∂g_o/∂x_i)² / ymax_o²)``
   (``S/V`` for a concentration), and, under a relative error model, divided by an
