@@ -34,7 +34,7 @@ __all__ = [
 ENV_VAR = "COMPARTMENTS_TEMPLATES"
 
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_-]{0,63}", re.ASCII)
-_HOW_TO_LIST = "list_templates() shows the available names"
+_HOW_TO_LIST = "`compartments templates` (or list_templates() in Python) shows the available names"
 
 
 def shipped_dir() -> Path:
