@@ -3,6 +3,8 @@ population values, synthetic recovery, and the likelihood's own calculus."""
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from scipy.optimize import check_grad, curve_fit
@@ -108,6 +110,77 @@ class TestTheoph:
         assert np.allclose(np.diag(r.correlation), 1.0)
         assert r.derived["half_life"].value == pytest.approx(np.log(2) / r.estimates["ke"])
         assert [s.name for s in r.stages][-1] == "likelihood"
+
+
+class TestPreDoseSamples:
+    """Theoph subject 1 has 0.74 mg/L at t = 0, before the dose is absorbed (a pre-dose level);
+    the model predicts exactly 0 there, which proportional and log-normal error cannot fit."""
+
+    def test_lognormal_leaves_it_out_and_equals_curve_fit_on_logs(self, theoph):
+        """Log-normal error is least squares on log concentrations, so the estimates equal
+        scipy.optimize.curve_fit of log(Bateman) on the samples after the dose (scipy as reference)."""
+        s = theoph["1"]
+        r = fit(s, "one-comp-oral", error="lognormal", seed=0, strategy=STRATEGY)
+        assert r.ok and r.n_obs == s.times.size - 1
+        assert any("at or before the first dose (t = 0 h: 0.74)" in w and "left out" in w for w in r.warnings)
+        after = s.times > 0
+        b = bateman(s.doses[0].amount)
+        est = np.array([r.estimates[k] for k in ("ka", "ke", "V")])
+        p, _ = curve_fit(lambda t, *q: np.log(b(t, *q)), s.times[after], np.log(s.values[after]),
+                         p0=est * [1.2, 0.8, 1.1], xtol=1e-14, ftol=1e-14, maxfev=20000)
+        np.testing.assert_allclose(est, p, rtol=1e-4)
+
+    def test_proportional_leaves_it_out_and_equals_the_written_likelihood(self, theoph):
+        """Proportional error: −2LL = Σ log(2π b² f²) + (y − f)²/(b² f²) (normal likelihood with
+        sd = b·f, common practice), minimised over ka, ke, V, b by scipy.optimize.minimize on the
+        samples after the dose; the fit's estimates agree to 1e-4."""
+        from scipy.optimize import minimize
+
+        s = theoph["1"]
+        r = fit(s, "one-comp-oral", error="proportional", seed=0, strategy=STRATEGY)
+        assert r.ok and r.n_obs == s.times.size - 1
+        after = s.times > 0
+        t, y = s.times[after], s.values[after]
+        b = bateman(s.doses[0].amount)
+
+        def m2ll(q):
+            ka, ke, v, sd = np.exp(q)
+            f = b(t, ka, ke, v)
+            return float(np.sum(np.log(2 * np.pi * (sd * f) ** 2) + (y - f) ** 2 / (sd * f) ** 2))
+
+        start = np.log([r.estimates["ka"] * 1.2, r.estimates["ke"] * 0.8, r.estimates["V"] * 1.1, 0.1])
+        opt = minimize(m2ll, start, method="Nelder-Mead", options={"xatol": 1e-10, "fatol": 1e-12, "maxiter": 20000})
+        np.testing.assert_allclose([r.estimates[k] for k in ("ka", "ke", "V")], np.exp(opt.x[:3]), rtol=1e-4)
+        assert r.objective == pytest.approx(opt.fun, abs=1e-6)
+
+    def test_additive_and_combined_keep_it(self, theoph):
+        """Under additive or combined error a value where the model predicts 0 is an ordinary
+        observation (the likelihood is defined there); nothing is left out."""
+        s = theoph["1"]
+        for error in ("additive", "combined"):
+            r = fit(s, "one-comp-oral", error=error, seed=0, strategy="nls")
+            assert r.n_obs == s.times.size
+            assert not any("left out" in w for w in r.warnings)
+
+    def test_zero_before_a_later_dose_is_left_out_under_proportional_error(self):
+        """A zero at t = 0 before a dose at 1 h carries no information under proportional error
+        (and would pull the error scale to 0); it is left out with a note, and the estimates
+        equal the fit of the same data without that row (the data are noiseless; common practice)."""
+        truth = {"ke": 0.2, "V": 10.0}
+        times = np.array([2.0, 3.0, 5.0, 8.0, 12.0, 18.0])
+        dose = Dose(1.0, 100.0, "iv")
+        base = synthetic("one-comp-iv", truth, [dose], times)
+        y = base.values * np.exp(0.05 * np.sin(np.arange(times.size)))  # fixed, deterministic scatter
+        with_zero = Subject(id="z", times=np.r_[0.0, times], values=np.r_[0.0, y], observables=(None,) * 7,
+                            censored=np.zeros(7, bool), lloq=np.full(7, np.nan), rows=np.arange(2, 9),
+                            doses=(dose,), covariates={}, flags=())
+        without = Subject(id="z", times=times, values=y, observables=(None,) * 6, censored=np.zeros(6, bool),
+                          lloq=np.full(6, np.nan), rows=np.arange(3, 9), doses=(dose,), covariates={}, flags=())
+        a = fit(with_zero, "one-comp-iv", error="proportional", strategy="nls")
+        b = fit(without, "one-comp-iv", error="proportional", strategy="nls")
+        assert a.n_obs == 6 and any("t = 0 h: 0)" in w for w in a.warnings)
+        assert a.estimates == pytest.approx(b.estimates, rel=1e-10)
+        assert a.error_parameters == pytest.approx(b.error_parameters, rel=1e-10)
 
 
 def test_indometh_two_compartment_matches_biexponential(indometh_csv):
@@ -353,6 +426,36 @@ class TestWaldIntervalCheck:
         s = synthetic("one-comp-oral", self.truth, [Dose(0, 300, "oral")], times, noise=0.03, seed=1)
         r = fit(s, "one-comp-oral", error="proportional", strategy=STRATEGY)
         assert not any("too narrow" in w for w in r.warnings), r.warnings
+
+
+    def test_a_point_short_of_the_optimum_is_called_so(self, monkeypatch):
+        """A likelihood stage that reports, as converged, a point 2 SE from the optimum along the
+        ke profile path (φ + 2·SE·cov[:, ke]/var(ke)): the end of the ke interval towards the optimum
+        has a lower −2LL than the reported point (for a quadratic likelihood: (1.96 − 2)² − 2² < 0;
+        Bates & Watts 1988, §2.3), and the fit must say that it stopped short there instead of calling
+        that end "too narrow"."""
+        from compartments.estimate import hybrid
+
+        times = np.array([0.25, 0.5, 1, 1.5, 2, 3, 4, 6, 8, 12, 18, 24.0])
+        s = synthetic("one-comp-oral", {"ka": 1.0, "ke": 0.1, "V": 20.0}, [Dose(0, 300, "oral")], times,
+                      noise=0.05, seed=2)
+        good = fit(s, "one-comp-oral", error="proportional", strategy="nls")
+        real_run = hybrid.LikelihoodStage.run
+
+        def short(self, problem, starts):
+            res = real_run(self, problem, starts)
+            j = problem.names.index("ke")
+            C = good.covariance
+            phi = res.phi + 2.0 * np.sqrt(C[j, j]) * C[: res.phi.size, j] / C[j, j]
+            value, eta, _ = problem.moment_objective(phi)
+            return replace(res, phi=phi, objective=value, extra={**res.extra, "eta": eta})
+
+        monkeypatch.setattr(hybrid.LikelihoodStage, "run", short)
+        r = fit(s, "one-comp-oral", error="proportional", strategy="nls")
+        assert r.objective > good.objective + 1.0
+        assert any("lower end of the 95 % interval of ke" in w and "stopped short of the optimum" in w
+                   for w in r.warnings), r.warnings
+        assert not any("interval of ke is too narrow" in w for w in r.warnings)
 
 
 class TestNewtonPolish:

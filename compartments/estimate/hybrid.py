@@ -30,7 +30,7 @@ from ..results import DerivedValue, FitResult, Residuals
 from ..template import Template
 from .likelihood import _sd, error_parameter_names, neg2ll
 from .nls import LikelihoodStage, is_plain_least_squares
-from .problem import Problem, make_problem
+from .problem import Problem, make_problem, set_aside_zero_predictions
 from .stages import StageResult
 from .uncertainty import Uncertainty, check_wald_intervals, estimate_uncertainty, profile_parameter
 
@@ -39,6 +39,8 @@ Array = NDArray[np.float64]
 STRATEGIES = ("hybrid", "nls", "network", "multistart")
 #: A Wald interval end whose likelihood level falls this far below the nominal one is flagged.
 WALD_SLACK = 0.05
+#: A Wald interval end whose −2LL is this much below the estimate's shows the fit stopped short.
+STOPPED_SHORT = 1e-3
 RSE_LIMIT = 50.0
 CORR_LIMIT = 0.95
 MULTISTART_REFINE = 8
@@ -219,6 +221,7 @@ def fit(
         )
     model = compiled(template)
     problem = make_problem(model, subjects, error=error, fixed=fixed, estimate=estimate)
+    problem, notes = set_aside_zero_predictions(problem)
     n_unc = int(np.sum(~problem.censored))
     if n_unc < problem.n_free:
         raise FitError(
@@ -275,7 +278,7 @@ def fit(
             eta = np.asarray(lik.extra["eta"], dtype=float)
             ok, msg = lik.status == "converged", lik.message
         return _summarise(problem, template, label, phi, eta, obj, ok, msg, tuple(stages), error, seed,
-                          strategy, profile, bootstrap, level, t_start)
+                          strategy, profile, bootstrap, level, t_start, notes)
     except CompartmentsError as exc:
         return failed_result(template, label, str(exc), error=error, seed=seed, strategy=strategy,
                              stages=tuple(stages), wall_time=time.perf_counter() - t_start)
@@ -283,9 +286,10 @@ def fit(
 
 def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta: Array, obj: float,
                converged: bool, msg: str, stages: tuple[StageResult, ...], error: str, seed: int,
-               strategy: str, profile: bool, bootstrap: int, level: float, t_start: float) -> FitResult:
+               strategy: str, profile: bool, bootstrap: int, level: float, t_start: float,
+               notes: Sequence[str] = ()) -> FitResult:
     model = problem.model
-    warnings: list[str] = []
+    warnings: list[str] = list(notes)
     if not converged:
         # a fit that did not converge is recorded as failed (its numbers are not estimates);
         # the point where it stopped is given in the message
@@ -339,7 +343,13 @@ def _summarise(problem: Problem, template: Template, label: str, phi: Array, eta
                     warnings.append(f"{names[i]} and {names[j]} are strongly correlated (r = {c:+.3f}); "
                                     "the data may support only a combination of them.")
         for c in check_wald_intervals(problem, phi, eta, unc, obj, level):
-            if c.level < level - WALD_SLACK:
+            if c.rise < -STOPPED_SHORT:
+                warnings.append(
+                    f"−2LL at the {c.side} end of the {100 * level:.0f} % interval of {names[c.index]} is "
+                    f"{-c.rise:.3g} below its value at the estimate: the fit stopped short of the optimum in that "
+                    "direction. Refit with strategy 'multistart', or check the data and the error model."
+                )
+            elif c.level < level - WALD_SLACK:
                 warnings.append(
                     f"The {100 * level:.0f} % interval of {names[c.index]} is too narrow on its {c.side} side: "
                     f"the likelihood rises only {c.rise:.2g} at that end ({c.expected:.2g} expected), which is "

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -262,3 +262,76 @@ def make_problem(
     if not free:
         raise FitError("nothing to estimate: every parameter is fixed")
     return Problem(model=model, data=data, free=free, base=base, error=error)
+
+
+#: Error models whose standard deviation vanishes where the prediction does.
+ZERO_SD_ERRORS = ("proportional", "lognormal")
+
+
+def set_aside_zero_predictions(problem: Problem) -> tuple[Problem, tuple[str, ...]]:
+    """Leave out rows the model predicts as exactly zero whatever the parameters, where the
+    error model cannot use them.
+
+    A sample taken at or before a subject's first dose (a sample at a dose time sees the
+    state before the dose) of a model whose states start at zero is predicted as exactly
+    0 for every parameter value. Under proportional or log-normal error its standard
+    deviation is then 0 too: a positive value there (a pre-dose level: carry-over, an
+    endogenous baseline, assay noise) cannot be fitted at all, and a zero or censored value
+    carries no information on the parameters — yet a zero residual with a zero scale would
+    pull the estimated error scale towards 0. Such rows are left out, each named in a note;
+    additive and combined error keep them (their likelihood is well defined there).
+
+    Parameters
+    ----------
+    problem : Problem
+
+    Returns
+    -------
+    problem : Problem
+        The same problem without those rows (the input itself when there are none).
+    notes : tuple of str
+        One plain sentence per subject with rows left out.
+
+    Notes
+    -----
+    "Exactly zero whatever the parameters" is checked, not assumed: the rows must be
+    predicted as 0.0 both at the template defaults and at a second point of the bounded
+    parameter box, so a template with a baseline or a parameter-dependent initial state
+    keeps its rows.
+    """
+    if problem.error not in ZERO_SD_ERRORS:
+        return problem, ()
+    early = [d.times <= min(x.time for x in d.doses) if d.doses else np.zeros(d.n, bool) for d in problem.data]
+    if not any(e.any() for e in early):
+        return problem, ()
+    lo, hi = problem.phi_bounds
+    lo = np.where(np.isfinite(lo), lo, problem.default_phi - 1.0)
+    hi = np.where(np.isfinite(hi), hi, problem.default_phi + 1.0)
+    zero = np.ones(problem.n_obs, bool)
+    for phi in (problem.default_phi, lo + 0.3 * (hi - lo)):
+        f, _ = problem.predict(phi)
+        zero &= f == 0.0
+    data, notes, start = [], [], 0
+    unit = problem.model.template.time_unit
+    for d, e in zip(problem.data, early, strict=True):
+        out = e & zero[start:start + d.n]
+        start += d.n
+        if not out.any():
+            data.append(d)
+            continue
+        keep = ~out
+        data.append(replace(d, times=d.times[keep], values=d.values[keep], obs_index=d.obs_index[keep],
+                            censored=d.censored[keep], lloq=d.lloq[keep]))
+        shown = ", ".join(
+            f"t = {t:g} {unit}: " + ("below the LLOQ" if c else f"{v:g}")
+            for t, v, c in zip(d.times[out], d.values[out], d.censored[out], strict=True)
+        )
+        positive = bool(np.any((d.values[out] > 0) & ~d.censored[out]))
+        why = ("a positive value there (a pre-dose level) cannot be fitted, a zero carries no information"
+               if positive else "these values carry no information there")
+        hint = ("; use combined error to fit pre-dose levels, or subtract the baseline" if positive else "")
+        notes.append(
+            f"Subject {d.id}: {int(out.sum())} sample{'s' if out.sum() > 1 else ''} taken at or before the first dose ({shown}), where "
+            f"the model predicts exactly 0, left out of the fit: under {problem.error} error {why}{hint}."
+        )
+    return replace(problem, data=tuple(data)), tuple(notes)
