@@ -43,8 +43,8 @@ SETTINGS = {"models": ["one-comp-oral", "two-comp-oral"], "error": "additive", "
             "blq": "censor"}
 
 
-def render(renderable: object) -> str:
-    console = Console(file=StringIO(), width=100)
+def render(renderable: object, width: int = 100) -> str:
+    console = Console(file=StringIO(), width=width)
     console.print(renderable)
     return console.file.getvalue()  # type: ignore[attr-defined]
 
@@ -112,6 +112,43 @@ class TestTerminal:
         assert f"AIC {fmt(f.aic, 5)}" in text and f"BIC {fmt(f.bic, 5)}" in text
         assert "−2 log-likelihood" in text and "11 observations" in text
         assert f"residual SD {fmt(residual_sd(f), 3)} mg/L" in text
+
+    def test_profile_and_bootstrap_intervals_are_shown(self, theoph, tmp_path: Path) -> None:
+        """With profile and bootstrap requested, the parameter table (terminal and Markdown) and
+        parameters_long.csv carry the profile interval and the bootstrap SE and interval, as
+        computed; an end the profile does not reach reads "open" (and is empty in the CSV)."""
+        from dataclasses import replace
+
+        from compartments import fit
+        from compartments.estimate.uncertainty import Profile
+
+        study, _, checks = theoph
+        f = fit(study["1"], "one-comp-oral", error="additive", strategy="nls", profile=True, bootstrap=8, seed=0)
+        text = flat(render(fit_panel(f), width=160))
+        assert "profile 95 % CI" in text and "bootstrap SE" in text and "bootstrap 95 % CI" in text
+        for n in ("ka", "ke", "V"):
+            lo, hi = f.profiles[n].ci
+            blo, bhi = f.bootstrap["ci"][n]
+            assert f"{fmt(lo, 3)} to {fmt(hi, 3)}" in text
+            assert f"{fmt(f.bootstrap['se'][n], 3)} {fmt(blo, 3)} to {fmt(bhi, 3)}" in text
+        done = 8 - f.bootstrap["failed"]
+        assert f"bootstrap: {done} of 8 parametric replicates refitted" in text
+        md = markdown_report(CohortResult(fits=(f,), subjects=("1",), models=("one-comp-oral",),
+                                          comparisons={"1": compare_models([f])}, settings={"pooled": False},
+                                          n_failed=0), study.subset(["1"]), SETTINGS)
+        assert "| profile 95 % CI | bootstrap SE | bootstrap 95 % CI |" in md
+        row = parameters_long(CohortResult(fits=(f,), subjects=("1",), models=("one-comp-oral",),
+                                           comparisons={}, settings={}, n_failed=0)).set_index("parameter").loc["ke"]
+        assert (row.profile_ci95_low, row.profile_ci95_high) == pytest.approx(f.profiles["ke"].ci)
+        assert row.bootstrap_se == pytest.approx(f.bootstrap["se"]["ke"])
+        # a profile that does not close on one side
+        half = replace(f, profiles={**f.profiles, "ka": Profile("ka", np.zeros(0), np.zeros(0),
+                                                              (f.profiles["ka"].ci[0], float("nan")), 3.84)})
+        text = flat(render(fit_panel(half), width=160))
+        assert f"{fmt(f.profiles['ka'].ci[0], 3)} to open" in text and "does not rise enough" in text
+        assert pd.isna(parameters_long(CohortResult(fits=(half,), subjects=("1",), models=("one-comp-oral",),
+                                                    comparisons={}, settings={}, n_failed=0))
+                       .set_index("parameter").loc["ka", "profile_ci95_high"])
 
     def test_model_and_nca_half_life_agree_on_theoph(self, theoph) -> None:
         """On Theoph the NCA terminal t½ and the model's ln 2/ke agree within 25 % (issue 5 acceptance;

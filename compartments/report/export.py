@@ -325,14 +325,26 @@ def fits_frame(cohort: Any) -> pd.DataFrame:
 
 
 def parameters_long(cohort: Any) -> pd.DataFrame:
-    """One row per subject × model × parameter (estimated, fixed and error-model)."""
+    """One row per subject × model × parameter (estimated, fixed and error-model).
+
+    The profile-likelihood and bootstrap columns are filled for estimated parameters when
+    those were computed (``--profile``, ``--bootstrap N``); an empty profile end was not
+    reached within the template's bounds.
+    """
     rows = []
     for f in cohort.fits:
+        boot = f.bootstrap or {}
         for n in f.parameter_names:
             lo, hi = f.ci.get(n, (None, None))
+            prof = (f.profiles or {}).get(n)
+            plo, phi = prof.ci if prof is not None else (None, None)
+            blo, bhi = (boot.get("ci") or {}).get(n, (None, None))
             rows.append({"subject": f.subject, "model": f.template, "parameter": n, "kind": "estimated",
                          "estimate": finite(f.estimates[n]), "se": finite(f.se.get(n)), "rse_pct": finite(f.rse.get(n)),
-                         "ci95_low": finite(lo), "ci95_high": finite(hi), "unit": f.units.get(n, "")})
+                         "ci95_low": finite(lo), "ci95_high": finite(hi), "unit": f.units.get(n, ""),
+                         "profile_ci95_low": finite(plo), "profile_ci95_high": finite(phi),
+                         "bootstrap_se": finite((boot.get("se") or {}).get(n)),
+                         "bootstrap_ci95_low": finite(blo), "bootstrap_ci95_high": finite(bhi)})
         t = f.model_template
         for n, v in f.fixed.items():
             rows.append({"subject": f.subject, "model": f.template, "parameter": n, "kind": "fixed",
@@ -343,7 +355,8 @@ def parameters_long(cohort: Any) -> pd.DataFrame:
                          "estimate": finite(v), "se": None, "rse_pct": None, "ci95_low": None, "ci95_high": None,
                          "unit": error_parameter_unit(n, f)})
     return pd.DataFrame(rows, columns=["subject", "model", "parameter", "kind", "estimate", "se", "rse_pct",
-                                       "ci95_low", "ci95_high", "unit"])
+                                       "ci95_low", "ci95_high", "unit", "profile_ci95_low", "profile_ci95_high",
+                                       "bootstrap_se", "bootstrap_ci95_low", "bootstrap_ci95_high"])
 
 
 def parameters_wide(cohort: Any) -> pd.DataFrame:

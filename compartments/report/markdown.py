@@ -13,7 +13,14 @@ from pathlib import Path
 from typing import Any
 
 from .export import CrossChecks, error_parameter_unit, residual_sd, residual_unit, safe_name
-from .tables import CAUTIONS, EXPOSURE_LABELS, comparison_sentence, fmt, fmt_ci, fmt_pct
+from .tables import (
+    CAUTIONS,
+    EXPOSURE_LABELS,
+    comparison_sentence,
+    fmt,
+    fmt_pct,
+    parameter_columns,
+)
 
 
 def _cell(x: Any) -> str:
@@ -48,11 +55,11 @@ def _fit_section(f: Any, checks: CrossChecks, level: str = "###") -> list[str]:
         out += [f"**Failed:** {f.message or 'no reason was recorded'}", ""]
         return out
     out += [f"_{f.strategy} strategy, {f.error_model} error, seed {f.seed}; covariance: {f.covariance_method or '—'}_", ""]
-    out.append(md_table(["parameter", "estimate", "unit", "SE", "RSE %", "95 % CI"],
-                        [[n, fmt(f.estimates[n]), f.units.get(n, ""), fmt(f.se.get(n), 3), fmt_pct(f.rse.get(n)),
-                          fmt_ci(f.ci.get(n))] for n in f.parameter_names],
-                        [False, True, False, True, True, True]))
+    header, rows, note = parameter_columns(f)
+    out.append(md_table(header, rows, [i not in (0, 2) for i in range(len(header))]))
     out.append("")
+    if note:
+        out += [f"_{note[0].upper() + note[1:]}._", ""]
     t = f.model_template
     if f.fixed:
         out.append("**Held fixed:** " + ", ".join(

@@ -171,18 +171,60 @@ def cautions_panel() -> Panel:
 
 
 # -- one fit ------------------------------------------------------------------------------------
+def fmt_open_ci(ci: tuple[float, float] | None, sig: int = 3) -> str:
+    """A profile-likelihood interval; an end the profile does not reach within the template's
+    bounds (nan) reads "open".
+
+    Examples
+    --------
+    >>> fmt_open_ci((1.2, float("nan"))), fmt_open_ci((0.5, 2.0)), fmt_open_ci(None)
+    ('1.20 to open', '0.500 to 2.00', '—')
+    """
+    if ci is None:
+        return "—"
+    return " to ".join(fmt(v, sig) if isinstance(v, (int, float)) and math.isfinite(v) else "open" for v in ci)
+
+
+def parameter_columns(result: Any) -> tuple[list[str], list[list[str]], str | None]:
+    """Header, rows and a note for the parameter table of a fit (terminal and Markdown).
+
+    Estimate, unit, SE, %RSE and the Wald interval; then the profile-likelihood interval
+    when profiles were computed, and the bootstrap SE and percentile interval when a
+    bootstrap was run (the note gives its replicate counts).
+    """
+    header = ["parameter", "estimate", "unit", "SE", "RSE %", "95 % CI"]
+    rows = [[n, fmt(result.estimates[n]), result.units.get(n, ""), fmt(result.se.get(n), 3),
+             fmt_pct(result.rse.get(n)), fmt_ci(result.ci.get(n))] for n in result.parameter_names]
+    notes = []
+    profiles = result.profiles or {}
+    if profiles:
+        header.append("profile 95 % CI")
+        for n, row in zip(result.parameter_names, rows, strict=True):
+            row.append(fmt_open_ci(profiles[n].ci) if n in profiles else "—")
+        if any(not all(math.isfinite(v) for v in p.ci) for p in profiles.values()):
+            notes.append("profile: \"open\" where −2LL does not rise enough within the template's bounds")
+    boot = result.bootstrap or {}
+    if boot.get("n"):
+        header += ["bootstrap SE", "bootstrap 95 % CI"]
+        se, ci = boot.get("se") or {}, boot.get("ci") or {}
+        for n, row in zip(result.parameter_names, rows, strict=True):
+            row += [fmt(se.get(n), 3), fmt_ci(ci.get(n))]
+        done = int(boot["n"]) - int(boot.get("failed", 0))
+        notes.append(f"bootstrap: {done} of {int(boot['n'])} parametric replicates refitted, percentile interval")
+    return header, rows, "; ".join(notes) or None
+
+
 def parameter_table(result: Any) -> Table:
-    """Estimated parameters: estimate, unit, SE, %RSE, 95 % CI."""
+    """Estimated parameters: estimate, unit, SE, %RSE, 95 % CI (and profile / bootstrap intervals)."""
+    header, rows, note = parameter_columns(result)
     t = _table("Estimated parameters")
-    t.add_column("parameter")
-    t.add_column("estimate", justify="right")
-    t.add_column("unit")
-    t.add_column("SE", justify="right")
-    t.add_column("RSE %", justify="right")
-    t.add_column("95 % CI", justify="right")
-    for n in result.parameter_names:
-        t.add_row(n, fmt(result.estimates[n]), result.units.get(n, ""), fmt(result.se.get(n), 3),
-                  fmt_pct(result.rse.get(n)), fmt_ci(result.ci.get(n)))
+    if note:
+        t.caption = note
+        t.caption_justify = "left"
+    for i, h in enumerate(header):
+        t.add_column(h, justify="left" if i in (0, 2) else "right")
+    for row in rows:
+        t.add_row(*row)
     return t
 
 
