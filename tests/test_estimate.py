@@ -153,6 +153,13 @@ class TestPreDoseSamples:
         np.testing.assert_allclose([r.estimates[k] for k in ("ka", "ke", "V")], np.exp(opt.x[:3]), rtol=1e-4)
         assert r.objective == pytest.approx(opt.fun, abs=1e-6)
 
+    def test_pooled_fit_names_every_subject_in_one_note(self, theoph):
+        """Pooled subjects 1 and 2 (0.74 and 0 at t = 0): both rows left out, one note names both."""
+        r = fit(theoph.subset(["1", "2"]), "one-comp-oral", error="proportional", pooled=True, strategy="nls")
+        notes = [w for w in r.warnings if "left out of the fit" in w]
+        assert r.n_obs == 20 and len(notes) == 1
+        assert notes[0].startswith("2 samples") and "subject 1 t = 0 h: 0.74; subject 2 t = 0 h: 0)" in notes[0]
+
     def test_additive_and_combined_keep_it(self, theoph):
         """Under additive or combined error a value where the model predicts 0 is an ordinary
         observation (the likelihood is defined there); nothing is left out."""

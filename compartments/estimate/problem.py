@@ -290,7 +290,7 @@ def set_aside_zero_predictions(problem: Problem) -> tuple[Problem, tuple[str, ..
     problem : Problem
         The same problem without those rows (the input itself when there are none).
     notes : tuple of str
-        One plain sentence per subject with rows left out.
+        One plain sentence naming the rows left out (empty when none).
 
     Notes
     -----
@@ -311,7 +311,8 @@ def set_aside_zero_predictions(problem: Problem) -> tuple[Problem, tuple[str, ..
     for phi in (problem.default_phi, lo + 0.3 * (hi - lo)):
         f, _ = problem.predict(phi)
         zero &= f == 0.0
-    data, notes, start = [], [], 0
+    data, shown, start = [], [], 0
+    n_out, positive = 0, False
     unit = problem.model.template.time_unit
     for d, e in zip(problem.data, early, strict=True):
         out = e & zero[start:start + d.n]
@@ -322,16 +323,16 @@ def set_aside_zero_predictions(problem: Problem) -> tuple[Problem, tuple[str, ..
         keep = ~out
         data.append(replace(d, times=d.times[keep], values=d.values[keep], obs_index=d.obs_index[keep],
                             censored=d.censored[keep], lloq=d.lloq[keep]))
-        shown = ", ".join(
-            f"t = {t:g} {unit}: " + ("below the LLOQ" if c else f"{v:g}")
-            for t, v, c in zip(d.times[out], d.values[out], d.censored[out], strict=True)
-        )
-        positive = bool(np.any((d.values[out] > 0) & ~d.censored[out]))
-        why = ("a positive value there (a pre-dose level) cannot be fitted, a zero carries no information"
-               if positive else "these values carry no information there")
-        hint = ("; use combined error to fit pre-dose levels, or subtract the baseline" if positive else "")
-        notes.append(
-            f"Subject {d.id}: {int(out.sum())} sample{'s' if out.sum() > 1 else ''} taken at or before the first dose ({shown}), where "
-            f"the model predicts exactly 0, left out of the fit: under {problem.error} error {why}{hint}."
-        )
-    return replace(problem, data=tuple(data)), tuple(notes)
+        rows = ", ".join(f"t = {t:g} {unit}: " + ("below the LLOQ" if c else f"{v:g}")
+                         for t, v, c in zip(d.times[out], d.values[out], d.censored[out], strict=True))
+        shown.append(rows if len(problem.data) == 1 else f"subject {d.id} {rows}")
+        n_out += int(out.sum())
+        positive |= bool(np.any((d.values[out] > 0) & ~d.censored[out]))
+    if not n_out:
+        return problem, ()
+    why = ("a positive value there (a pre-dose level) cannot be fitted and a zero carries no information; "
+           "use combined error to fit pre-dose levels, or subtract the baseline"
+           if positive else "these values carry no information there")
+    note = (f"{n_out} sample{'s' if n_out > 1 else ''} taken at or before the first dose ({'; '.join(shown)}), "
+            f"where the model predicts exactly 0, left out of the fit: under {problem.error} error {why}.")
+    return replace(problem, data=tuple(data)), (note,)
