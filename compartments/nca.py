@@ -434,7 +434,7 @@ def _analyse(
         inner = int((t_late < tlast).sum())
         sentence = (
             f"{_plural(int(t_late.size), 'concentration', 'concentrations')} below the "
-            f"LLOQ after Cmax were left out of λz and AUC"
+            f"LLOQ after Cmax {'was' if t_late.size == 1 else 'were'} left out of λz and AUC"
         )
         if inner:
             sentence += f" ({inner} before the last quantifiable sample, bridged by AUC)"
