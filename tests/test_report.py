@@ -301,6 +301,24 @@ class TestPlots:
         labels = lin.get_legend_handles_labels()[1]
         assert "below LLOQ, at LLOQ" in labels and "one-comp-oral" in labels
 
+    def test_samples_no_fit_used_are_marked(self, theoph) -> None:
+        """Theoph subject 1 under proportional error: the pre-dose 0.74 mg/L at t = 0 is left out of
+        the fit and drawn as an open "not fitted" point; the other ten are drawn as observed. Under
+        additive error all eleven are fitted and nothing is marked."""
+        from compartments import fit
+
+        study, cohort, _ = theoph
+        s = study["1"]
+        f = fit(s, "one-comp-oral", error="proportional", strategy="nls")
+        assert plots.unfitted_rows([f], s).tolist() == [True] + [False] * 10
+        lin = plots.subject_figure([f], s).axes[0]
+        handles, labels = lin.get_legend_handles_labels()
+        mark = handles[labels.index("not fitted (see the notes)")]
+        np.testing.assert_allclose(mark.get_offsets(), [[0.0, 0.74]])
+        observed = handles[labels.index("observed")]
+        assert len(observed.get_offsets()) == 10
+        assert not plots.unfitted_rows([cohort.get("1", "one-comp-oral")], s).any()
+
     def test_residual_and_observed_predicted(self, theoph) -> None:
         """Residual plots hold (time, weighted residual); observed vs predicted holds every quantified pair."""
         _, cohort, _ = theoph

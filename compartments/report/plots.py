@@ -79,12 +79,44 @@ def _time_unit(fits: Sequence[Any], default: str = "h") -> str:
     return default
 
 
-def plot_observed(ax: Axes, subject: Any, colors: Mapping[str | None, Any] | None = None) -> None:
-    """Observed samples: filled points; values below the LLOQ as open down-triangles at the LLOQ."""
+def unfitted_rows(fits: Sequence[Any], subject: Any) -> np.ndarray:
+    """Mask of the subject's samples that no successful fit among ``fits`` used (e.g. a pre-dose
+    sample left out under proportional error); all False when there is no successful fit."""
+    ok = [f for f in fits if f.ok and f.residuals is not None]
+    times = np.asarray(subject.times, dtype=float)
+    if not ok:
+        return np.zeros(times.size, bool)
+    used: dict[tuple[float, float], int] = {}
+    for f in ok:
+        r = f.residuals
+        counts: dict[tuple[float, float], int] = {}
+        for s, t, y in zip(r.subject, r.time, r.observed, strict=True):
+            if s == str(subject.id):
+                counts[(float(t), float(y))] = counts.get((float(t), float(y)), 0) + 1
+        for k, v in counts.items():
+            used[k] = max(used.get(k, 0), v)
+    out = np.zeros(times.size, bool)
+    for i, (t, y) in enumerate(zip(times, np.asarray(subject.values, dtype=float), strict=True)):
+        k = (float(t), float(y))
+        if used.get(k, 0) > 0:
+            used[k] -= 1
+        else:
+            out[i] = True
+    return out
+
+
+def plot_observed(ax: Axes, subject: Any, colors: Mapping[str | None, Any] | None = None,
+                  unfitted: np.ndarray | None = None) -> None:
+    """Observed samples: filled points; values below the LLOQ as open down-triangles at the LLOQ;
+    samples no fit used (``unfitted``) as open grey circles."""
     obs_names = list(dict.fromkeys(subject.observables))
     several = len(obs_names) > 1
+    left = np.zeros(len(subject.times), bool) if unfitted is None else np.asarray(unfitted, dtype=bool)
+    if left.any():
+        ax.scatter(subject.times[left], subject.values[left], marker="o", s=40, facecolors="none",
+                   edgecolors="0.45", zorder=3, label="not fitted (see the notes)")
     for i, o in enumerate(obs_names):
-        mask = np.array([x == o for x in subject.observables], dtype=bool)
+        mask = np.array([x == o for x in subject.observables], dtype=bool) & ~left
         cens = np.asarray(subject.censored, dtype=bool)
         color = (colors or {}).get(o, "0.15")
         label = f"observed {o}" if several and o else "observed"
@@ -138,7 +170,7 @@ def subject_figure(fits: Sequence[Any], subject: Any, title: str | None = None) 
     fits : sequence of FitResult
         The fits to draw for this subject (any number of models; failed ones are skipped).
     subject : Subject
-        The study subject (its samples are drawn, censored ones marked).
+        The study subject (its samples are drawn, censored ones and ones no fit used marked).
     title : str, optional
     """
     ok = [f for f in fits if f.ok]
@@ -161,9 +193,10 @@ def subject_figure(fits: Sequence[Any], subject: Any, title: str | None = None) 
     end = max(list(times) + doses + [0.0]) * 1.04 or 1.0
     grid = np.union1d(np.linspace(0.0, end, 121), np.array(doses, dtype=float))
     curves = subject_curves(ok, subject.id, grid)
+    unfitted = unfitted_rows(ok, subject)
     for ax, log in zip(axes, (False, True), strict=True):
         plot_fit_curves(ax, ok, subject.id, colors=colors, by_observable=by_obs, curves=curves)
-        plot_observed(ax, subject, point_colors)
+        plot_observed(ax, subject, point_colors, unfitted)
         ax.set_xlabel(_label("time", _time_unit(ok)))
         ax.set_ylabel(_y_label(ok) if ok else "value")
         if log:
