@@ -84,8 +84,8 @@ import keyword
 import math
 import re
 import tomllib
-from collections.abc import Iterator, Mapping
-from dataclasses import dataclass, field
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import sympy as sp
@@ -287,6 +287,25 @@ class Template:
     @property
     def state_names(self) -> tuple[str, ...]:
         return tuple(s.name for s in self.states)
+
+    def with_units(self, rewrite: Callable[[str], str]) -> Template:
+        """The same template with every unit text passed through ``rewrite`` (labels only:
+        equations, values and bounds are unchanged; the compiled model is shared).
+
+        Examples
+        --------
+        >>> from compartments import load_template
+        >>> t = load_template("one-comp-oral").with_units(lambda u: u.replace("L", "L/kg"))
+        >>> t.parameter("V").unit, t.parameter("ke").unit
+        ('L/kg', '1/h')
+        """
+        return replace(
+            self,
+            states=tuple(replace(x, unit=rewrite(x.unit)) for x in self.states),
+            parameters=tuple(replace(x, unit=rewrite(x.unit)) for x in self.parameters),
+            observables=tuple(replace(x, unit=rewrite(x.unit)) for x in self.observables),
+            derived=tuple(replace(x, unit=rewrite(x.unit)) for x in self.derived),
+        )
 
     @property
     def parameter_names(self) -> tuple[str, ...]:

@@ -46,6 +46,30 @@ def one_error_line(capsys: pytest.CaptureFixture[str]) -> str:
 
 
 class TestFit:
+    def test_units_of_the_estimates_follow_the_data(self, theoph_csv: Path, tmp_path: Path, capsys) -> None:
+        """Theoph doses are per kg (mg/kg) and values mg/L, so V comes out in L/kg and CL in L/h/kg
+        (dimensional analysis, common practice; the published CL/F ≈ 0.040 L/h/kg of Pinheiro &
+        Bates 2000 is per kg, from memory); doses in µg with values in ng/mL give L and ng/mL."""
+        out = tmp_path / "run.json"
+        code = run(["fit", theoph_csv, "--model", "one-comp-oral", "--subject", "1", *BASE,
+                    "--units", "dose=mg/kg,value=mg/L", "--json", out])
+        assert code == 0
+        entry = json.loads(out.read_text(encoding="utf-8"))["fits"][0]
+        assert entry["parameters"]["V"]["unit"] == "L/kg" and entry["parameters"]["ka"]["unit"] == "1/h"
+        assert entry["derived"]["CL"]["unit"] == "L/h/kg"
+        text = " ".join(capsys.readouterr().out.replace("│", " ").split())
+        assert "L/kg" in text and "L/h/kg" in text
+        assert "Units: doses are per kg: volumes come out in L/kg, clearances in L/h/kg." in text
+        frame = pd.read_csv(theoph_csv).rename(columns={"conc": "conc (ng/mL)", "Dose": "Dose (ug)"})
+        frame.to_csv(tmp_path / "ng.csv", index=False)
+        out2 = tmp_path / "run2.json"
+        code = run(["fit", tmp_path / "ng.csv", "--model", "one-comp-oral", "--subject", "1", "--dose-column",
+                    "Dose (ug)", "--route", "oral", "--strategy", "nls", "--workers", "1", "--json", out2])
+        assert code == 0
+        entry = json.loads(out2.read_text(encoding="utf-8"))["fits"][0]
+        assert entry["parameters"]["V"]["unit"] == "L" and entry["derived"]["CL"]["unit"] == "L/h"
+        assert entry["error_parameters"]["sd_concentration"]["unit"] == "ng/mL"
+
     def test_theoph_subject_with_every_output(self, theoph_csv: Path, tmp_path: Path, capsys) -> None:
         """One subject, one model: report with cautions; JSON valid and equal to a direct fit; CSV, plots, Markdown."""
         out = tmp_path / "out"

@@ -77,6 +77,17 @@ def _templates(models: Sequence[str], search: Sequence[Path]) -> list[Any]:
     return out
 
 
+def _unit_notes(study: Any, templates: Sequence[Any]) -> list[str]:
+    """What the study's units mean for the pharmacokinetic templates' estimates (each once)."""
+    from ..io.units import check_units
+
+    notes: dict[str, None] = {}
+    for t in templates:
+        if t.kind == "pk":
+            notes.update(dict.fromkeys(check_units(study, t)))
+    return list(notes)
+
+
 def _settings(cohort: Any, extra: Mapping[str, Any]) -> dict[str, Any]:
     settings = dict(cohort.settings)
     settings.update({k: v for k, v in extra.items() if v is not None})
@@ -193,7 +204,9 @@ def fit_command(
                        duration=duration, time_unit=time_unit, blq=blq, units=units, sheet=sheet,
                        time_axis=tmpl[0].time_unit, subjects=subject)
     from ..estimate.hybrid import needs_doses
+    from ..io.units import units_from_data
 
+    tmpl = [units_from_data(study, t) for t in tmpl]  # labels in the data's units (L/kg, ng/mL, ...)
     if all(needs_doses(t) for t in tmpl) and not any(s.doses for s in study.subjects):
         raise UsageError(f"{data}: no subject has a dose, and without one {', '.join(t.name for t in tmpl)} "
                          "predict(s) only zeros; give --dose AMOUNT with --route ROUTE, or --dose-column COL")
@@ -225,6 +238,7 @@ def fit_command(
         "model_sources": {t.name: t.source for t in tmpl}, "blq": blq, "dose_column": dose_column,
         "dose": dose, "route": route, "dose_time": dose_time, "duration": duration, "time_unit": time_unit,
         "map": split_list(map_) or None, "group_by": group_by,
+        "unit_notes": _unit_notes(study, tmpl) or None,
     })
     checks = cross_checks(cohort, study)
     console = Console()

@@ -187,6 +187,80 @@ def _volume_name(litres: float) -> str:
     return f"{litres:g} L"
 
 
+def _per_kg(dose_unit: str) -> tuple[str, bool]:
+    """``("mg", True)`` for "mg/kg": the amount unit and whether doses are per kg of body weight."""
+    u = dose_unit.strip()
+    base = re.sub(r"/\s*kg$", "", u, flags=re.IGNORECASE).strip()
+    return base, base != u
+
+
+_COMPOSITE_VOLUME = {1.0: "L", 1e-3: "mL", 1e3: "kL", 0.1: "dL", 1e-6: "µL"}
+
+
+def units_from_data(study: Study, template: Template) -> Template:
+    """``template`` with its unit labels in the units the study's data give the estimates.
+
+    A pharmacokinetic template states amounts in one unit (its states', e.g. mg), volumes in
+    L and concentrations in amount/L. Fitted to doses in another amount unit, values in
+    another concentration unit, or doses per kg of body weight, the same numbers mean
+    something else: with Theoph's doses in mg/kg and values in mg/L, V is in L/kg and
+    CL in L/h/kg. This rewrites the labels (dimensional analysis, common practice):
+    the concentration unit becomes the values' unit, amounts the dose's amount unit,
+    volumes ``dose amount / value concentration`` (L, mL, kL, …), and a unit holding an
+    amount or a volume gets "/kg" when doses are per kg. Equations and numbers are not
+    touched.
+
+    The template is returned unchanged when the study does not state both units, when
+    they are not an amount and an amount per volume of the same kind (mass or moles),
+    when the template is not a pharmacokinetic one with amount states and a
+    concentration observable, or when nothing changes.
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> from compartments import load_template
+    >>> study = SimpleNamespace(units={"dose": "mg/kg", "value": "mg/L"})
+    >>> t = units_from_data(study, load_template("one-comp-oral"))
+    >>> t.parameter("V").unit, [d.unit for d in t.derived if d.name == "CL"], t.observables[0].unit
+    ('L/kg', ['L/h/kg'], 'mg/L')
+    """
+    units = getattr(study, "units", {}) or {}
+    dose_u, value_u = units.get("dose", ""), units.get("value", "")
+    if template.kind != "pk" or not dose_u or not value_u or not template.observables:
+        return template
+    dose_base, per_kg = _per_kg(dose_u)
+    dose_amount, conc = _amount(dose_base), _concentration(value_u)
+    model_conc = template.observables[0].unit
+    amounts = {s.unit for s in template.states if s.amount}
+    model_amount = amounts.pop() if len(amounts) == 1 else ""
+    parsed = _concentration(model_conc)
+    if (dose_amount is None or conc is None or dose_amount[0] != conc[0] or parsed is None
+            or _amount(model_amount) is None or _norm(model_conc.split("/")[0]) != _norm(model_amount)
+            or parsed[2] != 1.0):
+        return template
+    litres = dose_amount[1] / conc[1] * conc[2]
+    volume = next((n for v, n in _COMPOSITE_VOLUME.items() if abs(litres / v - 1.0) < 1e-9), f"({litres:g} L)")
+    if same_unit(dose_base, model_amount) and same_unit(value_u, model_conc) and volume == "L" and not per_kg:
+        return template
+
+    def rewrite(u: str) -> str:
+        if not u:
+            return u
+        if same_unit(u, model_conc):
+            return value_u
+        parts = re.split(r"([/·*() ])", u)
+        changed = False
+        for i, part in enumerate(parts):
+            if part and same_unit(part, model_amount) and part.strip():
+                parts[i], changed = dose_base, True
+            elif part == "L":
+                parts[i], changed = volume, True
+        out = "".join(parts)
+        return out + "/kg" if changed and per_kg else out
+
+    return template.with_units(rewrite)
+
+
 def check_units(study: Study, template: Template) -> list[str]:
     """Sentences about whether the study's units suit the template.
 
@@ -212,7 +286,8 @@ def check_units(study: Study, template: Template) -> list[str]:
     value_u = study.units.get("value", "")
     dose_u = study.units.get("dose", "")
     if not value_u:
-        out.append("the unit of the values is not stated; pass units={'value': 'mg/L'} (or the right unit) to check it")
+        out.append("the unit of the values is not stated; give it (units={'value': 'mg/L'}; command line: "
+                   "--units value=mg/L, or the right unit) to have the estimates labelled in the data's units")
     elif template.observables:
         obs = template.observables[0]
         if obs.unit and not same_unit(obs.unit, value_u):
@@ -222,10 +297,11 @@ def check_units(study: Study, template: Template) -> list[str]:
             )
     if not dose_u:
         if any(s.doses for s in study.subjects):
-            out.append("the unit of the doses is not stated; pass units={'dose': 'mg'} (or the right unit) to check it")
+            out.append("the unit of the doses is not stated; give it (units={'dose': 'mg'}; command line: "
+                       "--units dose=mg, or the right unit) to have the estimates labelled in the data's units")
         return out
-    per_kg = re.search(r"/\s*kg$", dose_u.strip(), re.IGNORECASE) is not None
-    dose_amount = _amount(re.sub(r"/\s*kg$", "", dose_u.strip(), flags=re.IGNORECASE))
+    dose_base, per_kg = _per_kg(dose_u)
+    dose_amount = _amount(dose_base)
     conc = _concentration(value_u) if value_u else None
     if dose_amount is None or conc is None:
         if value_u:

@@ -163,6 +163,7 @@ def markdown_report(cohort: Any, study: Any, settings: Mapping[str, Any], checks
             f"- **doses:** {t['doses']}" + (" (per kg body weight)" if study.dose_per_weight else ""),
             f"- **time span:** {first:g} to {last:g} {study.time_unit}",
             "- **units:** " + (", ".join(f"{k} {v}" for k, v in study.units.items() if v) or "not stated in the file")]
+    out += [f"  - {note}" for note in settings.get("unit_notes") or ()]
     keys = (("models", "models"), ("error", "error model"), ("strategy", "strategy"), ("seed", "seed"),
             ("blq", "below LLOQ"), ("pooled", "pooled"), ("profile", "profile likelihood"),
             ("bootstrap", "bootstrap replicates"), ("fixed", "held fixed"), ("estimate", "also estimated"))

@@ -159,6 +159,8 @@ def header(study: Any, settings: Mapping[str, Any]) -> Panel:
     if title:
         body.append(Text(str(title), style="bold"))
     body.append(grid)
+    for note in settings.get("unit_notes") or ():
+        body.append(Text(f"Units: {note}.", style="dim"))
     return Panel(Group(*body), title="compartments fit", title_align="left", box=box.ROUNDED)
 
 
