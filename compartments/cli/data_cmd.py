@@ -220,24 +220,6 @@ class OutputFolder:
             self.staging = None
 
 
-# -- units --------------------------------------------------------------------------------------
-def volume_unit(dose_unit: str, conc_unit: str) -> str:
-    """Unit of dose/concentration: ``mg`` and ``mg/L`` → ``L``; ``mg/kg`` and ``mg/L`` → ``L/kg``.
-
-    Examples
-    --------
-    >>> volume_unit("mg", "mg/L"), volume_unit("mg/kg", "mg/L"), volume_unit("", "mg/L")
-    ('L', 'L/kg', '')
-    """
-    if not dose_unit or not conc_unit or "/" not in conc_unit:
-        return ""
-    amount, _, volume = conc_unit.partition("/")
-    d_amount, _, per = dose_unit.partition("/")
-    if d_amount.strip() != amount.strip():
-        return f"({dose_unit})/({conc_unit})"
-    return volume.strip() + (f"/{per.strip()}" if per else "")
-
-
 # -- inspect ---------------------------------------------------------------------------------------
 @app.command("inspect")
 def inspect_command(
@@ -272,18 +254,19 @@ def nca_tables(results: Mapping[str, Any], study: Any) -> Any:
     from rich.table import Table
     from rich.text import Text
 
+    from ..io.units import volume_units
     from ..nca import summarize
     from ..report.tables import fmt, fmt_pct
 
     conc = study.units.get("value", "") or ""
     dose_u = study.units.get("dose", "") or ""
     tu = study.time_unit
-    vol = volume_unit(dose_u, conc)
+    vol, cl = volume_units(dose_u, conc, tu)
     routes = {r.route for r in results.values() if r.route}
     suffix = "/F" if routes == {"oral"} else ("" if routes and "oral" not in routes else " (/F if oral)")
     units = {
         "cmax": conc, "tmax": tu, "auc_last": f"{conc}·{tu}" if conc else tu, "auc_inf": f"{conc}·{tu}" if conc else tu,
-        "auc_extrap_pct": "%", "lambda_z": f"1/{tu}", "half_life": tu, "cl": f"{vol}/{tu}" if vol else "",
+        "auc_extrap_pct": "%", "lambda_z": f"1/{tu}", "half_life": tu, "cl": cl,
         "vz": vol, "mrt": tu,
     }
     labels = {"cmax": "Cmax", "tmax": "Tmax", "auc_last": "AUC0–tlast", "lambda_z": "λz", "half_life": "t½",

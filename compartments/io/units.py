@@ -180,13 +180,6 @@ def _concentration(u: str) -> tuple[str, float, float] | None:
     return amount[0], amount[1], _VOLUME[parts[1]]
 
 
-def _volume_name(litres: float) -> str:
-    for name, size in (("L", 1.0), ("mL", 1e-3), ("kL (1000 L)", 1e3), ("dL", 0.1), ("uL", 1e-6)):
-        if abs(litres / size - 1.0) < 1e-9:
-            return name
-    return f"{litres:g} L"
-
-
 def _per_kg(dose_unit: str) -> tuple[str, bool]:
     """``("mg", True)`` for "mg/kg": the amount unit and whether doses are per kg of body weight."""
     u = dose_unit.strip()
@@ -195,6 +188,39 @@ def _per_kg(dose_unit: str) -> tuple[str, bool]:
 
 
 _COMPOSITE_VOLUME = {1.0: "L", 1e-3: "mL", 1e3: "kL", 0.1: "dL", 1e-6: "µL"}
+
+
+def _litres(dose_unit: str, value_unit: str) -> float | None:
+    """Litres in one unit of dose/value (mg and mg/L: 1; mg and µg/L: 1000), per kg or not;
+    None unless an amount and an amount per volume of the same kind (mass or moles)."""
+    dose_amount, conc = _amount(_per_kg(dose_unit)[0]), _concentration(value_unit)
+    if dose_amount is None or conc is None or dose_amount[0] != conc[0]:
+        return None
+    return dose_amount[1] / conc[1] * conc[2]
+
+
+def volume_units(dose_unit: str, value_unit: str, time_unit: str) -> tuple[str, str]:
+    """Units of a volume (dose / value) and of a clearance (volume / time) estimated from data
+    in these units (dimensional analysis, common practice); a dose per kg of body weight
+    gives both per kg. ``("", "")`` when a unit is missing; a quotient of the texts when
+    they are not an amount and an amount per volume of the same kind.
+
+    Examples
+    --------
+    >>> volume_units("mg", "mg/L", "h"), volume_units("mg/kg", "mg/L", "h"), volume_units("mg", "ug/L", "h")
+    (('L', 'L/h'), ('L/kg', 'L/h/kg'), ('kL', 'kL/h'))
+    >>> volume_units("mg", "nmol/L", "h")
+    ('(mg)/(nmol/L)', '(mg)/(nmol/L)/h')
+    """
+    if not dose_unit or not value_unit:
+        return "", ""
+    litres = _litres(dose_unit, value_unit)
+    if litres is None:
+        vol = f"({dose_unit})/({value_unit})"
+        return vol, f"{vol}/{time_unit}"
+    name = next((n for v, n in _COMPOSITE_VOLUME.items() if abs(litres / v - 1.0) < 1e-9), f"({litres:g} L)")
+    kg = "/kg" if _per_kg(dose_unit)[1] else ""
+    return name + kg, f"{name}/{time_unit}{kg}"
 
 
 def units_from_data(study: Study, template: Template) -> Template:
@@ -238,8 +264,7 @@ def units_from_data(study: Study, template: Template) -> Template:
             or _amount(model_amount) is None or _norm(model_conc.split("/")[0]) != _norm(model_amount)
             or parsed[2] != 1.0):
         return template
-    litres = dose_amount[1] / conc[1] * conc[2]
-    volume = next((n for v, n in _COMPOSITE_VOLUME.items() if abs(litres / v - 1.0) < 1e-9), f"({litres:g} L)")
+    volume = volume_units(dose_base, value_u, template.time_unit)[0]
     if same_unit(dose_base, model_amount) and same_unit(value_u, model_conc) and volume == "L" and not per_kg:
         return template
 
@@ -311,12 +336,11 @@ def check_units(study: Study, template: Template) -> list[str]:
         out.append(f"the dose is in {dose_u} but the values in {value_u} (mass against moles); convert one with the molar mass")
         return out
     litres = dose_amount[1] / conc[1] * conc[2]
-    vol = _volume_name(litres)
-    time_u = study.time_unit
+    vol, cl = volume_units(dose_u, value_u, study.time_unit)
     if per_kg:
-        out.append(f"doses are per kg: volumes come out in {vol}/kg, clearances in {vol}/{time_u}/kg")
+        out.append(f"doses are per kg: volumes come out in {vol}, clearances in {cl}")
     else:
-        out.append(f"dose in {dose_u} and values in {value_u}: volumes come out in {vol}, clearances in {vol}/{time_u}")
+        out.append(f"dose in {dose_u} and values in {value_u}: volumes come out in {vol}, clearances in {cl}")
     if litres != 1.0:
         out.append("the dose and value units differ in scale; convert one of them if you want volumes in L")
     return out
