@@ -18,7 +18,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..dosing import Dose
-from ..errors import FitError, UsageError
+from ..errors import CompartmentsError, FitError, UsageError
 from ..model import Model
 from ..simulate import simulate
 from .likelihood import initial_eta, neg2ll
@@ -309,7 +309,10 @@ def set_aside_zero_predictions(problem: Problem) -> tuple[Problem, tuple[str, ..
     hi = np.where(np.isfinite(hi), hi, problem.default_phi + 1.0)
     zero = np.ones(problem.n_obs, bool)
     for phi in (problem.default_phi, lo + 0.3 * (hi - lo)):
-        f, _ = problem.predict(phi)
+        try:
+            f, _ = problem.predict(phi)
+        except CompartmentsError:  # cannot be checked here: keep every row, the fit will report
+            return problem, ()
         zero &= f == 0.0
     data, shown, start = [], [], 0
     n_out, positive = 0, False
