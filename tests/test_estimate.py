@@ -160,6 +160,21 @@ class TestPreDoseSamples:
         assert r.n_obs == 20 and len(notes) == 1
         assert notes[0].startswith("2 samples") and "subject 1 t = 0 h: 0.74; subject 2 t = 0 h: 0)" in notes[0]
 
+    def test_a_model_with_a_baseline_keeps_it(self, theoph):
+        """With an endogenous baseline (concentration = central/V + base) the prediction at t = 0 is
+        base, not 0, so the pre-dose 0.74 is an ordinary observation under proportional error and
+        nothing is left out (the check simulates, it does not assume; common practice)."""
+        from template_texts import oral_template
+
+        from compartments.template import parse_template
+
+        text = oral_template("oral-baseline", "one-compartment oral with a baseline")
+        text = text.replace('expression = "central / V"', 'expression = "central / V + base"').replace(
+            "[equations]", '[parameters.base]\nunit = "mg/L"\ndefault = 0.5\nlower = 0.001\nupper = 100.0\n\n[equations]')
+        r = fit(theoph["1"], parse_template(text), error="proportional", strategy="nls")
+        assert r.ok and r.n_obs == theoph["1"].times.size
+        assert not any("left out" in w for w in r.warnings)
+
     def test_additive_and_combined_keep_it(self, theoph):
         """Under additive or combined error a value where the model predicts 0 is an ordinary
         observation (the likelihood is defined there); nothing is left out."""
