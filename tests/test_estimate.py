@@ -160,6 +160,16 @@ class TestPreDoseSamples:
         assert r.n_obs == 20 and len(notes) == 1
         assert notes[0].startswith("2 samples") and "subject 1 t = 0 h: 0.74; subject 2 t = 0 h: 0)" in notes[0]
 
+    def test_too_few_left_says_why(self):
+        """Two samples, one of them pre-dose: under proportional error one is left, too few for two
+        parameters; the refusal says that a sample was left out and how to keep it."""
+        s = Subject(id="b", times=np.array([0.0, 2.0]), values=np.array([0.3, 4.0]), observables=(None,) * 2,
+                    censored=np.zeros(2, bool), lloq=np.full(2, np.nan), rows=np.arange(2, 4),
+                    doses=(Dose(0, 100, "iv"),), covariates={}, flags=())
+        with pytest.raises(FitError, match=r"1 quantified observation\(s\) \(1 sample was at or before the first "
+                                           r"dose, left out under proportional error; combined error keeps it\)"):
+            fit(s, "one-comp-iv", error="proportional", strategy="nls")
+
     def test_a_model_with_a_baseline_keeps_it(self, theoph):
         """With an endogenous baseline (concentration = central/V + base) the prediction at t = 0 is
         base, not 0, so the pre-dose 0.74 is an ordinary observation under proportional error and

@@ -221,11 +221,15 @@ def fit(
         )
     model = compiled(template)
     problem = make_problem(model, subjects, error=error, fixed=fixed, estimate=estimate)
+    n_read = problem.n_obs
     problem, notes = set_aside_zero_predictions(problem)
     n_unc = int(np.sum(~problem.censored))
     if n_unc < problem.n_free:
+        k = n_read - problem.n_obs
+        left = (f" ({k} sample{' was' if k == 1 else 's were'} at or before the first dose, left out under "
+                f"{error} error; combined error keeps {'it' if k == 1 else 'them'})" if k else "")
         raise FitError(
-            f"subject {label}: {n_unc} quantified observation(s) cannot determine the "
+            f"subject {label}: {n_unc} quantified observation(s){left} cannot determine the "
             f"{problem.n_free} parameters of {template.name!r}; use a model with fewer parameters, "
             "fix some (fixed=...), or pool subjects"
         )
