@@ -110,7 +110,7 @@ def fit_command(
     units: list[str] = UNITS_OPT,
     sheet: str | None = SHEET_OPT,
     error: str = typer.Option("additive", "--error", metavar="additive|proportional|combined|lognormal",
-                              help="Residual error model."),
+                              help="Residual error model. Proportional and log-normal error leave out samples the model predicts as exactly 0 (pre-dose), with a note; combined keeps them."),
     strategy: str = typer.Option("hybrid", "--strategy", metavar="hybrid|nls|network|multistart",
                                  help="hybrid: network stage then likelihood fit (default); nls: likelihood fit from "
                                       "the template defaults; network: network stage alone; multistart: many starts."),
