@@ -63,7 +63,9 @@ def write_study(study: Study, path: str | Path) -> Path:
 
     Examples
     --------
-    >>> write_study(study, "copy.csv")  # doctest: +SKIP
+    Write a study read from any format as a plain CSV (``study`` from :func:`read_study`)::
+
+        write_study(study, "copy.csv")
     """
     path = Path(path)
     units = study.units
