@@ -131,6 +131,9 @@ class TestTerminal:
             blo, bhi = f.bootstrap["ci"][n]
             assert f"{fmt(lo, 3)} to {fmt(hi, 3)}" in text
             assert f"{fmt(f.bootstrap['se'][n], 3)} {fmt(blo, 3)} to {fmt(bhi, 3)}" in text
+        # an 80-column terminal shows every number whole (the extra intervals get their own table)
+        narrow = render(fit_panel(f), width=80)
+        assert "…" not in narrow and "Profile-likelihood and bootstrap intervals" in narrow
         done = 8 - f.bootstrap["failed"]
         assert f"bootstrap: {done} of 8 parametric replicates refitted" in text
         md = markdown_report(CohortResult(fits=(f,), subjects=("1",), models=("one-comp-oral",),

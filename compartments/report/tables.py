@@ -187,6 +187,10 @@ def fmt_open_ci(ci: tuple[float, float] | None, sig: int = 3) -> str:
     return " to ".join(fmt(v, sig) if isinstance(v, (int, float)) and math.isfinite(v) else "open" for v in ci)
 
 
+#: The parameter table's own columns; profile and bootstrap columns follow when computed.
+BASE_COLUMNS = ("parameter", "estimate", "unit", "SE", "RSE %", "95 % CI")
+
+
 def parameter_columns(result: Any) -> tuple[list[str], list[list[str]], str | None]:
     """Header, rows and a note for the parameter table of a fit (terminal and Markdown).
 
@@ -194,7 +198,7 @@ def parameter_columns(result: Any) -> tuple[list[str], list[list[str]], str | No
     when profiles were computed, and the bootstrap SE and percentile interval when a
     bootstrap was run (the note gives its replicate counts).
     """
-    header = ["parameter", "estimate", "unit", "SE", "RSE %", "95 % CI"]
+    header = list(BASE_COLUMNS)
     rows = [[n, fmt(result.estimates[n]), result.units.get(n, ""), fmt(result.se.get(n), 3),
              fmt_pct(result.rse.get(n)), fmt_ci(result.ci.get(n))] for n in result.parameter_names]
     notes = []
@@ -216,18 +220,27 @@ def parameter_columns(result: Any) -> tuple[list[str], list[list[str]], str | No
     return header, rows, "; ".join(notes) or None
 
 
-def parameter_table(result: Any) -> Table:
-    """Estimated parameters: estimate, unit, SE, %RSE, 95 % CI (and profile / bootstrap intervals)."""
+def parameter_table(result: Any) -> RenderableType:
+    """Estimated parameters: estimate, unit, SE, %RSE, 95 % CI; the profile-likelihood and
+    bootstrap intervals, when computed, in a second table below (so that an 80-column
+    terminal shows every number whole)."""
     header, rows, note = parameter_columns(result)
-    t = _table("Estimated parameters")
+    base = len(BASE_COLUMNS)
+    tables = []
+    for title, cols in (("Estimated parameters", range(base)),
+                        ("Profile-likelihood and bootstrap intervals", [0, *range(base, len(header))])):
+        if len(cols) <= 1:
+            continue
+        t = _table(title)
+        for i in cols:
+            t.add_column(header[i], justify="left" if i in (0, 2) else "right", overflow="fold")
+        for row in rows:
+            t.add_row(*(row[i] for i in cols))
+        tables.append(t)
     if note:
-        t.caption = note
-        t.caption_justify = "left"
-    for i, h in enumerate(header):
-        t.add_column(h, justify="left" if i in (0, 2) else "right")
-    for row in rows:
-        t.add_row(*row)
-    return t
+        tables[-1].caption = note
+        tables[-1].caption_justify = "left"
+    return tables[0] if len(tables) == 1 else Group(*tables)
 
 
 def derived_table(result: Any) -> Table | None:
