@@ -216,6 +216,30 @@ class TestTheoph:
         with pytest.raises(UsageError, match="no such covariate"):
             cohort_panel(theoph_cohort, theoph, group_by="arm")
 
+    def test_cohort_panel_on_an_80_column_terminal(self, theoph, theoph_cohort):
+        """At 80 columns every number is shown whole: the summary comes in two parts, groups and
+        covariates one row per level; grouping by a numeric column (11 weights among 12 subjects)
+        says that such groups cannot be compared. At 200 columns the wide tables are used."""
+        from compartments.report.cohort import cohort_panel
+
+        def text(width):
+            console = Console(file=StringIO(), width=width)
+            console.print(cohort_panel(theoph_cohort, theoph, group_by="Wt"))
+            return console.file.getvalue()
+
+        narrow, wide = text(80), text(200)
+        assert "…" not in narrow
+        assert "one-comp-oral: estimates across subjects (continued)" in narrow
+        assert "(continued)" not in wide
+        from compartments.report.tables import fmt
+        from compartments.summaries import parameter_summary
+
+        for m in MODELS:  # each model's geometric mean of its first parameter, whole, in both layouts
+            geo = fmt(parameter_summary(theoph_cohort, m)["geo_mean"].iloc[0])
+            assert f" {geo} " in narrow and f" {geo} " in wide
+        assert "Wt takes 11 different values among 12 subjects" in " ".join(narrow.split())
+        assert "geo. mean (CV %)" in narrow
+
     def test_covariate_plot_data(self, theoph, theoph_cohort):
         """The scatter shows each subject's fitted V against its weight."""
         from compartments.report.cohort import covariate_figure

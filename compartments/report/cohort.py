@@ -43,7 +43,7 @@ from ..summaries import (
     parameter_table,
     study_covariates,
 )
-from .tables import fmt, fmt_pct
+from .tables import WidthAware, fmt, fmt_pct
 
 __all__ = [
     "CohortProgress",
@@ -68,7 +68,7 @@ def _table(title: str | None = None) -> Table:
                  pad_edge=False, expand=False)
 
 
-def _with_note(table: Table, note: str) -> Group:
+def _with_note(table: RenderableType, note: str) -> Group:
     """A table with a dim note under it (the note wraps to the console, not the table)."""
     return Group(table, Text(note, style="dim"))
 
@@ -142,27 +142,41 @@ def failures_table(frame: pd.DataFrame) -> Table | None:
     return t
 
 
+_SUMMARY_COLUMNS = (("unit", "left"), ("n", "right"), ("geo. mean", "right"), ("geo. CV %", "right"),
+                    ("median", "right"), ("min – max", "right"), ("mean", "right"), ("SD", "right"),
+                    ("outlying subjects", "left"))
+
+
 def summary_table(frame: pd.DataFrame, title: str | None = None) -> Group:
-    """Parameters across subjects (a :func:`~compartments.summaries.parameter_summary` frame)."""
+    """Parameters across subjects (a :func:`~compartments.summaries.parameter_summary` frame).
+
+    On a console too narrow for all the columns, the table is shown in two parts (geometric
+    mean, CV and range; then median, mean, SD and outlying subjects) rather than with
+    numbers cut short.
+    """
     model = frame.attrs.get("model", "")
-    t = _table(title or f"{model}: estimates across subjects")
-    t.add_column("")
-    t.add_column("unit")
-    t.add_column("n", justify="right")
-    t.add_column("geo. mean", justify="right")
-    t.add_column("geo. CV %", justify="right")
-    t.add_column("median", justify="right")
-    t.add_column("min – max", justify="right")
-    t.add_column("mean", justify="right")
-    t.add_column("SD", justify="right")
-    t.add_column("outlying subjects")
+    rows = []
     for name, r in frame.iterrows():
         label = Text(str(name), style="italic" if r["kind"] == "derived" else "")
-        t.add_row(label, r["unit"], str(int(r["n"])), fmt(r["geo_mean"]), fmt_pct(r["geo_cv_percent"]),
-                  fmt(r["median"]), f"{fmt(r['min'], 3)} – {fmt(r['max'], 3)}", fmt(r["mean"]), fmt(r["sd"], 3),
-                  r["outlying"] or "")
-    return _with_note(t, "Derived quantities in italics. Geometric CV % = 100·√(exp(s²) − 1), s the SD of the logs. "
-                         "Outlying: beyond 3 robust SD (1.4826·MAD) from the median on the log scale.")
+        rows.append([label, r["unit"], str(int(r["n"])), fmt(r["geo_mean"]), fmt_pct(r["geo_cv_percent"]),
+                     fmt(r["median"]), f"{fmt(r['min'], 3)} – {fmt(r['max'], 3)}", fmt(r["mean"]), fmt(r["sd"], 3),
+                     r["outlying"] or ""])
+
+    def part(heading: str, columns: Sequence[int]) -> Table:
+        t = _table(heading)
+        t.add_column("", overflow="fold")
+        for i in columns:
+            name, justify = _SUMMARY_COLUMNS[i - 1]
+            t.add_column(name, justify=justify, overflow="fold")  # type: ignore[arg-type]
+        for row in rows:
+            t.add_row(row[0], *(row[i] for i in columns))
+        return t
+
+    heading = title or f"{model}: estimates across subjects"
+    wide = part(heading, range(1, 10))
+    table = WidthAware(wide, [part(heading, (1, 2, 3, 4, 6)), part(f"{heading} (continued)", (1, 5, 7, 8, 9))])
+    return _with_note(table, "Derived quantities in italics. Geometric CV % = 100·√(exp(s²) − 1), s the SD of the logs. "
+                             "Outlying: beyond 3 robust SD (1.4826·MAD) from the median on the log scale.")
 
 
 def group_table(summary: pd.DataFrame, tests: pd.DataFrame) -> Group:
@@ -195,11 +209,34 @@ def group_table(summary: pd.DataFrame, tests: pd.DataFrame) -> Group:
                 cells.append("—")
         tail = [short.get(r["test"], r["test"]), _p(r["p_exploratory"])] if tested else []
         t.add_row(str(name), unit, *cells, *tail)
+    # one row per parameter and group, for consoles too narrow for a column per group
+    narrow = _table(f"{model}: by {group_by} — geometric mean (CV %)")
+    narrow.add_column("", overflow="fold")
+    narrow.add_column("unit")
+    narrow.add_column(str(group_by) or "group", overflow="fold")
+    narrow.add_column("n", justify="right")
+    narrow.add_column("geo. mean (CV %)", justify="right")
+    if tested:
+        narrow.add_column("test")
+        narrow.add_column("p", justify="right")
+    for name, r in tests.iterrows():
+        present = [g for g in groups if (g, name) in summary.index]
+        for k, g in enumerate(present):
+            s = summary.loc[(g, name)]
+            tail = ([short.get(r["test"], r["test"]), _p(r["p_exploratory"])] if k == 0 else ["", ""]) if tested else []
+            narrow.add_row(str(name) if k == 0 else "", s["unit"] if k == 0 else "", str(g), str(int(s["n"])),
+                           f"{fmt(s['geo_mean'])} ({fmt_pct(s['geo_cv_percent'])})", *tail,
+                           end_section=k == len(present) - 1)
+    table = WidthAware(t, [narrow])
     used = [f"{v}: {k}" for k, v in short.items() if k in set(tests["test"])]
+    if groups and 2 * len(groups) > sum(n_max.values()):
+        table = _with_note(table, f"{group_by} takes {len(groups)} different values among {sum(n_max.values())} "
+                                  "subjects: groups this small cannot be compared. Group by a column of categories "
+                                  "(arm, sex, site); numeric covariates are shown as rank correlations.")
     if not tested:
-        return Group(t)
+        return Group(table)
     legend = (", ".join(used) + (" (scipy.stats). " if used else "")) + f"p-values are {EXPLORATORY}."
-    return _with_note(t, legend)
+    return _with_note(table, legend)
 
 
 def correlation_table(frame: pd.DataFrame) -> Group | None:
@@ -218,7 +255,20 @@ def correlation_table(frame: pd.DataFrame) -> Group | None:
             r = frame[(frame["parameter"] == name) & (frame["covariate"] == c)].iloc[0]
             cells.append(f"{fmt(r['rho'], 2)} ({_p(r['p_exploratory'])}, {int(r['n'])})")
         t.add_row(str(name), *cells)
-    return _with_note(t, f"p-values (Spearman, scipy.stats) are {EXPLORATORY}.")
+    # one row per parameter and covariate, for consoles too narrow for a column per covariate
+    narrow = _table(f"{model}: Spearman rank correlation with covariates")
+    narrow.add_column("", overflow="fold")
+    narrow.add_column("covariate", overflow="fold")
+    narrow.add_column("ρ", justify="right")
+    narrow.add_column("p", justify="right")
+    narrow.add_column("n", justify="right")
+    names = list(dict.fromkeys(frame["parameter"]))
+    for name in names:
+        for k, c in enumerate(covs):
+            r = frame[(frame["parameter"] == name) & (frame["covariate"] == c)].iloc[0]
+            narrow.add_row(str(name) if k == 0 else "", c, fmt(r["rho"], 2), _p(r["p_exploratory"]), str(int(r["n"])),
+                           end_section=k == len(covs) - 1)
+    return _with_note(WidthAware(t, [narrow]), f"p-values (Spearman, scipy.stats) are {EXPLORATORY}.")
 
 
 def cohort_panel(cohort: Any, study: Any = None, group_by: str | None = None, *,

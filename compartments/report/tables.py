@@ -17,11 +17,12 @@ True
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from typing import Any
 
 from rich import box
-from rich.console import Group, RenderableType
+from rich.console import Console, ConsoleOptions, Group, RenderableType
+from rich.measure import Measurement
 from rich.panel import Panel
 from rich.rule import Rule
 from rich.table import Table
@@ -95,6 +96,22 @@ def fmt_pct(x: Any) -> str:
     if not math.isfinite(v):
         return "—" if math.isnan(v) else "∞"
     return f"{v:.1f}"
+
+
+class WidthAware:
+    """``wide`` when it fits the console unwrapped, otherwise ``parts`` one after another
+    (narrower tables that keep every number whole on an 80-column terminal)."""
+
+    def __init__(self, wide: RenderableType, parts: Sequence[RenderableType]):
+        self.wide = wide
+        self.parts = tuple(parts)
+
+    def __rich_console__(self, console: Console, options: ConsoleOptions) -> Iterator[RenderableType]:
+        need = Measurement.get(console, options.update(max_width=10**6), self.wide).maximum
+        if need <= options.max_width or not self.parts:
+            yield self.wide
+        else:
+            yield from self.parts
 
 
 def _table(title: str | None = None) -> Table:
