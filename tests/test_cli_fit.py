@@ -218,6 +218,8 @@ class TestNcaAndInspect:
         ref = nca_subject(study["1"])
         assert "Non-compartmental analysis per subject" in text and "Across subjects" in text
         assert "CL/F" in text and "Vz/F" in text and fmt(ref.auc_inf) in text
+        # captured output is 80 columns wide: the tables come in parts, every number whole
+        assert "…" not in text and fmt(ref.half_life) in text and fmt(ref.lambda_z, 3) in text
         table = pd.read_csv(out / "nca.csv")
         assert len(table) == 12
         row = table[table.subject == 1].iloc[0]

@@ -256,7 +256,7 @@ def nca_tables(results: Mapping[str, Any], study: Any) -> Any:
 
     from ..io.units import volume_units
     from ..nca import summarize
-    from ..report.tables import fmt, fmt_pct
+    from ..report.tables import WidthAware, fmt, fmt_pct
 
     conc = study.units.get("value", "") or ""
     dose_u = study.units.get("dose", "") or ""
@@ -272,31 +272,49 @@ def nca_tables(results: Mapping[str, Any], study: Any) -> Any:
     labels = {"cmax": "Cmax", "tmax": "Tmax", "auc_last": "AUC0–tlast", "lambda_z": "λz", "half_life": "t½",
               "auc_inf": "AUC0–∞", "auc_extrap_pct": "% extrap.", "cl": f"CL{suffix}", "vz": f"Vz{suffix}",
               "mrt": "MRT"}
-    per = Table(title="Non-compartmental analysis per subject", title_justify="left", title_style="bold",
-                box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False)
-    per.add_column("subject")
-    for k, lab in labels.items():
-        per.add_column(f"{lab}\n{units[k]}".rstrip(), justify="right")
-    for sid, r in results.items():
-        cells = []
-        for k in labels:
-            v = getattr(r, k)
-            if k == "auc_extrap_pct":
-                cells.append(fmt_pct(v) if v is not None else "—")
-            elif k == "lambda_z" and v is not None:
-                cells.append(f"{fmt(v, 3)} ({r.lambda_z_points})")
-            else:
-                cells.append(fmt(v, 4))
-        per.add_row(sid, *cells)
-    summ = Table(title="Across subjects", title_justify="left", title_style="bold", box=box.SIMPLE_HEAD,
-                 show_edge=False, pad_edge=False)
-    for c in ("quantity", "unit", "n", "geometric mean", "geometric CV %", "median", "min", "max", "mean", "SD"):
-        summ.add_column(c, justify="left" if c in ("quantity", "unit") else "right")
+    def cell(r: Any, k: str) -> str:
+        v = getattr(r, k)
+        if k == "auc_extrap_pct":
+            return fmt_pct(v) if v is not None else "—"
+        if k == "lambda_z" and v is not None:
+            return f"{fmt(v, 3)} ({r.lambda_z_points})"
+        return fmt(v, 4)
+
+    def per_table(title: str, keys: Sequence[str]) -> Table:
+        t = Table(title=title, title_justify="left", title_style="bold", box=box.SIMPLE_HEAD, show_edge=False,
+                  pad_edge=False)
+        t.add_column("subject", overflow="fold")
+        for k in keys:
+            t.add_column(f"{labels[k]}\n{units[k]}".rstrip(), justify="right", overflow="fold")
+        for sid, r in results.items():
+            t.add_row(sid, *(cell(r, k) for k in keys))
+        return t
+
     s = summarize(results)
-    for k, lab in labels.items():
-        st = s[k]
-        summ.add_row(lab, units[k], str(st["n"]), fmt(st["geometric_mean"]), fmt_pct(st["geometric_cv_pct"]),
-                     fmt(st["median"]), fmt(st["min"]), fmt(st["max"]), fmt(st["mean"]), fmt(st["sd"]))
+    stats_cols = {"n": lambda st: str(st["n"]), "geometric mean": lambda st: fmt(st["geometric_mean"]),
+                  "geometric CV %": lambda st: fmt_pct(st["geometric_cv_pct"]), "median": lambda st: fmt(st["median"]),
+                  "min": lambda st: fmt(st["min"]), "max": lambda st: fmt(st["max"]),
+                  "mean": lambda st: fmt(st["mean"]), "SD": lambda st: fmt(st["sd"])}
+
+    def summary_table(title: str, cols: Sequence[str]) -> Table:
+        t = Table(title=title, title_justify="left", title_style="bold", box=box.SIMPLE_HEAD, show_edge=False,
+                  pad_edge=False)
+        t.add_column("quantity", overflow="fold")
+        t.add_column("unit", overflow="fold")
+        for c in cols:
+            t.add_column(c, justify="right", overflow="fold")
+        for k, lab in labels.items():
+            t.add_row(lab, units[k], *(stats_cols[c](s[k]) for c in cols))
+        return t
+
+    keys = list(labels)
+    half = ["cmax", "tmax", "auc_last", "auc_inf", "auc_extrap_pct"]
+    title = "Non-compartmental analysis per subject"
+    per = WidthAware(per_table(title, keys), [per_table(f"{title}: exposure", half),
+                                             per_table(f"{title}: elimination", [k for k in keys if k not in half])])
+    cols = list(stats_cols)
+    summ = WidthAware(summary_table("Across subjects", cols),
+                      [summary_table("Across subjects", cols[:4]), summary_table("Across subjects (continued)", cols[4:])])
     notes = Text()
     for sid, r in results.items():
         for n in r.notes:
