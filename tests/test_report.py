@@ -176,6 +176,24 @@ class TestTerminal:
             assert line in flat(text)
         assert "4 fit(s): 4 ok, 0 failed." in text
 
+    def test_whole_report_at_80_columns(self, theoph) -> None:
+        """On an 80-column terminal no number or model name is cut short (only the checksum is
+        shortened on purpose); the overview drops the evidence words, which each subject's
+        sentence already gives."""
+        study, cohort, checks = theoph
+        # a third model that failed for subject 2 fills the overview's "failed" column
+        extra = failed_result("transit-oral", "2", "subject 2: an invented failure for the layout")
+        fits = (*cohort.fits, extra)
+        comps = {s: compare_models([f for f in fits if f.subject == s]) for s in study.ids}
+        wide = CohortResult(fits=fits, subjects=study.ids, models=(*cohort.models, "transit-oral"),
+                            comparisons=comps, settings={"pooled": False}, n_failed=1)
+        text = render(fit_report(wide, study, SETTINGS, checks), width=80)
+        cut = [line for line in text.splitlines() if "…" in line]
+        assert len(cut) == 1 and "sha256" in cut[0]
+        c = comps["1"]
+        assert c.evidence in flat(text) and "Preferred model per subject" in text
+        assert any(line.split()[:1] == ["2"] and line.rstrip().endswith("transit-oral") for line in text.splitlines())
+
     def test_quiet_keeps_cautions_only(self, theoph) -> None:
         """--quiet drops the header and per-fit detail but still ends with the cautions."""
         study, cohort, checks = theoph

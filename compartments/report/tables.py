@@ -416,22 +416,30 @@ def comparison_table(c: ModelComparison) -> Group:
     return Group(t, Text(comparison_sentence(c)))
 
 
-def comparisons_overview(comparisons: Mapping[str, ModelComparison]) -> Table:
-    """One line per subject: the preferred model, its weight, the runner-up and the margin."""
+def comparisons_overview(comparisons: Mapping[str, ModelComparison]) -> RenderableType:
+    """One line per subject: the preferred model, its weight, the runner-up, the margin and
+    the evidence in words (left out on a console too narrow for it: each subject's
+    sentence above says it)."""
     first = next(iter(comparisons.values()), None)
     crit = (first.criterion if first else "aic").upper()
-    t = _table("Preferred model per subject")
-    t.add_column("subject")
-    t.add_column("preferred")
-    t.add_column("weight", justify="right")
-    t.add_column("runner-up")
-    t.add_column(f"Δ{crit}", justify="right")
-    t.add_column("evidence")
-    t.add_column("failed")
-    for sid, c in comparisons.items():
-        t.add_row(sid, c.preferred or "—", fmt(c.weights.get(c.preferred), 3) if c.preferred else "—",
-                  c.runner_up or "—", fmt(c.margin, 3), c.evidence, ", ".join(c.failed) or "")
-    return t
+
+    def table(evidence: bool) -> Table:
+        t = _table("Preferred model per subject")
+        t.add_column("subject", overflow="fold")
+        t.add_column("preferred", no_wrap=True)
+        t.add_column("weight", justify="right")
+        t.add_column("runner-up", no_wrap=True)
+        t.add_column(f"Δ{crit}", justify="right")
+        if evidence:
+            t.add_column("evidence")
+        t.add_column("failed", overflow="fold")
+        for sid, c in comparisons.items():
+            words = [c.evidence] if evidence else []
+            t.add_row(sid, c.preferred or "—", fmt(c.weights.get(c.preferred), 3) if c.preferred else "—",
+                      c.runner_up or "—", fmt(c.margin, 3), *words, ", ".join(c.failed) or "")
+        return t
+
+    return WidthAware(table(True), [table(False)])
 
 
 def status_table(fits: Sequence[Any]) -> Table:
