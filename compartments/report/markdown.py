@@ -175,6 +175,8 @@ def markdown_report(cohort: Any, study: Any, settings: Mapping[str, Any], checks
             v = ", ".join(f"{a} = {fmt(b)}" for a, b in v.items())
         elif isinstance(v, (list, tuple)):
             v = ", ".join(map(str, v))
+        elif v is True:
+            v = "yes"
         out.append(f"- **{label}:** {v}")
     out.append("")
     by_subject: dict[str, list[Any]] = {}
