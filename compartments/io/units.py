@@ -341,6 +341,6 @@ def check_units(study: Study, template: Template) -> list[str]:
         out.append(f"doses are per kg: volumes come out in {vol}, clearances in {cl}")
     else:
         out.append(f"dose in {dose_u} and values in {value_u}: volumes come out in {vol}, clearances in {cl}")
-    if litres != 1.0:
+    if abs(litres - 1.0) > 1e-9:  # not exactly 1 in floating point (1e-3 / 1e-6 · 1e-3)
         out.append("the dose and value units differ in scale; convert one of them if you want volumes in L")
     return out
