@@ -441,6 +441,12 @@ class TestCheckUnits:
         """ug / (mcg/mL) = mL (1 mcg = 1 ug)."""
         assert "volumes come out in mL" in check_units(_study("ug", "mcg/mL"), _template("mcg/mL"))[0]
 
+    def test_molar_values(self):
+        """nmol / nM = nmol / (nmol/L) = L; mg against nM is mass against moles (SI: M = mol/L)."""
+        assert check_units(_study("nmol", "nM"), _template("nM"))[0] == (
+            "dose in nmol and values in nM: volumes come out in L, clearances in L/h")
+        assert "mass against moles" in check_units(_study("mg", "nM"), _template("nM"))[0]
+
     def test_mg_and_mcg_per_ml_is_litres(self):
         """mg / (mcg/mL) = 1e-3 g / (1e-6 g / 1e-3 L) = 1 L exactly (Indometh: 25 mg, mcg/mL): no
         scale warning, although 1e-3 / 1e-6 · 1e-3 is not exactly 1 in floating point."""

@@ -169,9 +169,16 @@ def _amount(u: str) -> tuple[str, float] | None:
     return None
 
 
+_MOLAR = {"m": 1.0, "mm": 1e-3, "um": 1e-6, "nm": 1e-9, "pm": 1e-12}
+
+
 def _concentration(u: str) -> tuple[str, float, float] | None:
-    """(kind, amount factor, volume in L) for ``amount/volume`` units such as mg/L."""
-    parts = _norm(u).split("/")
+    """(kind, amount factor, volume in L) for ``amount/volume`` units such as mg/L, and for
+    molar units (M = mol/L; mM, µM, nM, pM)."""
+    n = _norm(u)
+    if n in _MOLAR and u.strip()[-1:] == "M":  # capital M: molar (mol/L), not metres
+        return "moles", _MOLAR[n], 1.0
+    parts = n.split("/")
     if len(parts) != 2 or parts[1] not in _VOLUME:
         return None
     amount = _amount(parts[0])
