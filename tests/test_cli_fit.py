@@ -15,9 +15,9 @@ from pathlib import Path
 import jsonschema
 import pandas as pd
 import pytest
+from cli_run import run
 
 from compartments import fit
-from compartments.cli import main
 from compartments.cli.data_cmd import MARKER
 from compartments.nca import nca_subject
 from compartments.report.export import load_schema
@@ -26,14 +26,6 @@ from compartments.study import read_study
 
 BASE = ["--dose-column", "Dose", "--route", "oral", "--strategy", "nls", "--workers", "1"]
 
-
-def run(argv: list[str]) -> int:
-    """Run the program; return its exit code (0 when it returns normally)."""
-    try:
-        main([str(a) for a in argv])
-    except SystemExit as exc:
-        return int(exc.code or 0)
-    return 0
 
 
 def one_error_line(capsys: pytest.CaptureFixture[str]) -> str:

@@ -18,9 +18,9 @@ from pathlib import Path
 import matplotlib.figure
 import pandas as pd
 import pytest
+from cli_run import run
 
 from compartments import atomic
-from compartments.cli import main
 from compartments.cli.data_cmd import MARKER
 
 ROWS = (
@@ -31,13 +31,6 @@ ROWS = (
 BASE = ["--model", "one-comp-oral", "--dose", "100", "--route", "oral", "--strategy", "nls", "--workers", "1",
         "--quiet"]
 
-
-def run(argv: list[object]) -> int:
-    try:
-        main([str(a) for a in argv])
-    except SystemExit as exc:
-        return int(exc.code or 0)
-    return 0
 
 
 def snapshot(root: Path) -> dict[str, str]:

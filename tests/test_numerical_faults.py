@@ -18,23 +18,16 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from cli_run import run
 
 import compartments.simulate as simulate_module
 from compartments import Dose, fit, load_template, read_study
-from compartments.cli import main
 from compartments.model import compiled
 from compartments.simulate import simulate
 
 TIMES = np.array([0.25, 0.5, 1, 2, 4, 6, 8, 12, 24.0])
 NONFINITE_WORDS = re.compile(r"\b(nan|NaN|NAN|inf|Inf|INF|Infinity|infinity)\b")
 
-
-def run(argv: list[object]) -> int:
-    try:
-        main([str(a) for a in argv])
-    except SystemExit as exc:
-        return int(exc.code or 0)
-    return 0
 
 
 def flat(text: str) -> str:
