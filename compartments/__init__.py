@@ -31,10 +31,12 @@ __all__ = [
     "Dose",
     "FitError",
     "FitResult",
+    "IdentifiabilityResult",
     "TemplateError",
     "UsageError",
     "compile_model",
     "fit",
+    "identifiability",
     "list_templates",
     "load_template",
     "read_study",
@@ -66,6 +68,10 @@ def __getattr__(name: str) -> Any:
         from .simulate import simulate
 
         return simulate
+    if name in ("identifiability", "IdentifiabilityResult"):
+        from . import design
+
+        return getattr(design, name)
     if name == "compile_model":
         from .model import compile_model
 
