@@ -32,9 +32,11 @@ __all__ = [
     "FitError",
     "FitResult",
     "IdentifiabilityResult",
+    "SamplingDesign",
     "TemplateError",
     "UsageError",
     "compile_model",
+    "design_samples",
     "fit",
     "identifiability",
     "list_templates",
@@ -68,7 +70,7 @@ def __getattr__(name: str) -> Any:
         from .simulate import simulate
 
         return simulate
-    if name in ("identifiability", "IdentifiabilityResult"):
+    if name in ("identifiability", "IdentifiabilityResult", "design_samples", "SamplingDesign"):
         from . import design
 
         return getattr(design, name)

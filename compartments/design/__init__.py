@@ -9,5 +9,6 @@ Numerics only: no I/O and no presentation (tables and figures live in ``report/`
 from __future__ import annotations
 
 from .identifiability import IdentifiabilityResult, identifiability
+from .sampling import DesignGroup, SamplingDesign, design_samples
 
-__all__ = ["IdentifiabilityResult", "identifiability"]
+__all__ = ["DesignGroup", "IdentifiabilityResult", "SamplingDesign", "design_samples", "identifiability"]
