@@ -217,92 +217,107 @@ def build_jets(
     NotRational
         The model is not rational in its states and parameters.
     """
-    xs = [sp.Symbol(n, real=True) for n in template.state_names]
-    ps = {p.name: sp.Symbol(p.name, real=True) for p in template.parameters}
-    by_name = {s.name: s for s in xs} | ps
-    syms = xs + list(ps.values())
-
-    def norm(e: Any) -> sp.Expr:
-        e = sp.sympify(e)
-        return e.xreplace({s: by_name[s.name] for s in e.free_symbols if s.name in by_name})
-
-    fixed = {ps[k]: sp.Rational(v) for k, v in known.items()}
-    n, m = len(xs), len(observed)
-    names = list(unknown)
-    for e in range(len(occasions)):
-        names += [f"x{e}_{i}_{k}" for i in range(n) for k in range(order + 1)]
-        names += [f"y{e}_{o}_{k}" for o in range(m) for k in range(order + 1)]
-    R = ring([ps[u] for u in unknown] + [sp.Symbol(s) for s in names[len(unknown):]], sp.QQ, "grevlex")[0]
-    index = {str(s): i for i, s in enumerate(R.symbols)}
-
-    def X(e: int, i: int, k: int) -> int:
-        return index[f"x{e}_{i}_{k}"]
-
-    def Y(e: int, o: int, k: int) -> int:
-        return index[f"y{e}_{o}_{k}"]
-
-    def to_ring(expr: sp.Expr, start: Mapping[sp.Symbol, sp.Symbol]) -> PolyElement:
-        return R.from_expr(expr.xreplace(fixed).xreplace(start))
-
-    rhs = [_fraction(norm(template.equations[s]).xreplace(fixed), syms, f"the equation of {s}")
-           for s in template.state_names]
-    outs = [_fraction(norm(template.observable(o).expression).xreplace(fixed), syms, f"observable {o}")
-            for o in observed]
-    equations: list[JetEquation] = []
-    outputs: list[list[int]] = [[] for _ in range(order + 1)]
-    nonzero: list[PolyElement] = []
+    b = _Builder(template, observed, len(occasions), unknown, known, order)
     for e, occ in enumerate(occasions):
-        start = {xs[i]: R.symbols[X(e, i, 0)] for i in range(n)}
-        nxt = {X(e, i, k): X(e, i, k + 1) for i in range(n) for k in range(order)}
-        nxt |= {Y(e, o, k): Y(e, o, k + 1) for o in range(m) for k in range(order)}
+        state_eqs, out_eqs = b.start(e, occ)
+        b.sweep(e, state_eqs, out_eqs)
+    return JetSystem(ring=b.R, parameters=tuple(unknown), equations=b.equations, outputs=b.outputs,
+                     nonzero=b.nonzero, order=order)
+
+
+class _Builder:
+    """The ring of parameters and jets, and the equations as they are built."""
+
+    def __init__(self, template: Template, observed: Sequence[str], occasions: int, unknown: Sequence[str],
+                 known: Mapping[str, sp.Rational], order: int) -> None:
+        self.template, self.order = template, order
+        self.xs = [sp.Symbol(n, real=True) for n in template.state_names]
+        ps = {p.name: sp.Symbol(p.name, real=True) for p in template.parameters}
+        self.by_name = {s.name: s for s in self.xs} | ps
+        self.syms = self.xs + list(ps.values())
+        self.fixed = {ps[k]: sp.Rational(v) for k, v in known.items()}
+        self.n, self.m = len(self.xs), len(observed)
+        names = [f"x{e}_{i}_{k}" for e in range(occasions) for i in range(self.n) for k in range(order + 1)]
+        names += [f"y{e}_{o}_{k}" for e in range(occasions) for o in range(self.m) for k in range(order + 1)]
+        self.R = ring([ps[u] for u in unknown] + [sp.Symbol(s) for s in names], sp.QQ, "grevlex")[0]
+        self.index = {str(s): i for i, s in enumerate(self.R.symbols)}
+        self.rhs = [_fraction(self.norm(template.equations[s]), self.syms, f"the equation of {s}")
+                    for s in template.state_names]
+        self.outs = [_fraction(self.norm(template.observable(o).expression), self.syms, f"observable {o}")
+                     for o in observed]
+        self.equations: list[JetEquation] = []
+        self.outputs: list[list[int]] = [[] for _ in range(order + 1)]
+        self.nonzero: list[PolyElement] = []
+
+    def norm(self, e: Any) -> sp.Expr:
+        """Template symbols as the ring's, known parameters as their values."""
+        e = sp.sympify(e)
+        e = e.xreplace({s: self.by_name[s.name] for s in e.free_symbols if s.name in self.by_name})
+        return e.xreplace(self.fixed)
+
+    def X(self, e: int, i: int, k: int) -> int:
+        return self.index[f"x{e}_{i}_{k}"]
+
+    def Y(self, e: int, o: int, k: int) -> int:
+        return self.index[f"y{e}_{o}_{k}"]
+
+    def _ring(self, expr: sp.Expr, e: int) -> PolyElement:
+        start = {self.xs[i]: self.R.symbols[self.X(e, i, 0)] for i in range(self.n)}
+        return self.R.from_expr(expr.xreplace(start))
+
+    def _add(self, lead: int, p: PolyElement) -> None:
+        coef = _lead_coefficient(p, lead)
+        self.equations.append(JetEquation(lead, coef, p - coef * self.R.gens[lead]))
+
+    def _nonzero(self, p: PolyElement) -> PolyElement:
+        if not p.is_ground:
+            self.nonzero.append(p)
+        return p
+
+    def start(self, e: int, occ: Occasion) -> tuple[list[PolyElement], list[PolyElement]]:
+        """Initial values of occasion e; its first state and output identities."""
+        t, n = self.template, self.n
         inputs = [sp.Integer(0)] * n
-        init = [norm(s.initial) for s in template.states]
+        init = [self.norm(s.initial) for s in t.states]
         if occ.route is not None:
-            entry = template.doses[occ.route]
-            j = template.state_names.index(entry.state)
-            F = norm(entry.bioavailability)
+            entry = t.doses[occ.route]
+            j = t.state_names.index(entry.state)
+            F = self.norm(entry.bioavailability)
             if occ.route == "infusion":
-                inputs[j] = occ.amount * F
+                inputs[j] = occ.amount * F  # a constant input
             else:
-                init[j] = init[j] + occ.amount * F
+                init[j] = init[j] + occ.amount * F  # a bolus: an initial condition
         for i in range(n):
-            num, den = _fraction(init[i].xreplace(fixed), syms, f"the initial value of {template.state_names[i]}")
-            c = to_ring(den, start)
-            equations.append(JetEquation(X(e, i, 0), c, -to_ring(num, start)))
-            if not c.is_ground:
-                nonzero.append(c)
+            num, den = _fraction(init[i], self.syms, f"the initial value of {t.state_names[i]}")
+            c = self._nonzero(self._ring(den, e))
+            self.equations.append(JetEquation(self.X(e, i, 0), c, -self._ring(num, e)))
+        gens = self.R.gens
         state_eqs = []
-        for i, (P, Q) in enumerate(rhs):
-            Qi = to_ring(Q, start)
-            if order >= 1:
-                Pi = to_ring(sp.expand(P + inputs[i].xreplace(fixed) * Q), start)
-                state_eqs.append(Qi * R.gens[X(e, i, 1)] - Pi)
-            if not Qi.is_ground:
-                nonzero.append(Qi)
-        outs_e = []
-        for o, (S, Rr) in enumerate(outs):
-            Ro = to_ring(Rr, start)
-            outs_e.append(Ro * R.gens[Y(e, o, 0)] - to_ring(S, start))
-            if not Ro.is_ground:
-                nonzero.append(Ro)
+        for i, (P, Q) in enumerate(self.rhs):
+            Qi = self._nonzero(self._ring(Q, e))
+            if self.order >= 1:
+                state_eqs.append(Qi * gens[self.X(e, i, 1)] - self._ring(sp.expand(P + inputs[i] * Q), e))
+        out_eqs = [self._nonzero(self._ring(Rr, e)) * gens[self.Y(e, o, 0)] - self._ring(S, e)
+                   for o, (S, Rr) in enumerate(self.outs)]
+        return state_eqs, out_eqs
+
+    def sweep(self, e: int, state_eqs: list[PolyElement], out_eqs: list[PolyElement]) -> None:
+        """Differentiate the identities order by order, each fixing its new jet."""
+        order = self.order
+        nxt = {self.X(e, i, k): self.X(e, i, k + 1) for i in range(self.n) for k in range(order)}
+        nxt |= {self.Y(e, o, k): self.Y(e, o, k + 1) for o in range(self.m) for k in range(order)}
         for k in range(order + 1):
-            for o in range(m):
-                lead = Y(e, o, k)
-                coef = _lead_coefficient(outs_e[o], lead)
-                equations.append(JetEquation(lead, coef, outs_e[o] - coef * R.gens[lead]))
-                outputs[k].append(lead)
+            for o in range(self.m):
+                self._add(self.Y(e, o, k), out_eqs[o])
+                self.outputs[k].append(self.Y(e, o, k))
                 if k < order:
-                    outs_e[o] = _total_derivative(outs_e[o], nxt)
+                    out_eqs[o] = _total_derivative(out_eqs[o], nxt)
             if k == order:
                 break
-            for i in range(n):
-                lead = X(e, i, k + 1)
-                coef = _lead_coefficient(state_eqs[i], lead)
-                equations.append(JetEquation(lead, coef, state_eqs[i] - coef * R.gens[lead]))
+            for i in range(self.n):
+                self._add(self.X(e, i, k + 1), state_eqs[i])
                 if k + 1 < order:
                     state_eqs[i] = _total_derivative(state_eqs[i], nxt)
-    return JetSystem(ring=R, parameters=tuple(unknown), equations=equations, outputs=outputs,
-                     nonzero=nonzero, order=order)
 
 
 def _lead_coefficient(p: PolyElement, lead: int) -> PolyElement:

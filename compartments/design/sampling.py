@@ -421,6 +421,28 @@ def design_samples(
     True
     """
     started = time.monotonic()
+    problem, setup = _build_problem(template, values, fixed, estimate, doses, n, window, error, sd, cv, observed,
+                                    criterion, interest, min_spacing, allowed, replicates, subjects, variability,
+                                    groups, prior, draws, seed)
+    free, lo, hi = setup["free"], problem.window[0], problem.window[1]
+    if setup["allowed"] is not None:
+        found = discrete_search(problem.objective, problem.layout, setup["allowed"], problem.spacing, starts, seed)
+    else:
+        found = continuous_search(problem.objective, problem.layout, lo, hi, problem.spacing, starts, seed)
+    value = problem.exact_value(found.x)
+    if not math.isfinite(value):
+        raise UsageError(f"no schedule of {'/'.join(map(str, problem.layout))} samples in the window can estimate "
+                         f"{', '.join(free)}: the information stays singular; add samples, observe more, or fix "
+                         "parameters (fixed=)")
+    check, sens = check_equivalence(problem, found.x, setup["allowed"], seed)
+    return _record(template, problem, setup, found, value, check, sens, time.monotonic() - started)
+
+
+def _build_problem(template: Template, values: Any, fixed: Any, estimate: Any, doses: Any, n: Any, window: Any,
+                   error: Any, sd: Any, cv: Any, observed: Any, criterion: Any, interest: Any, min_spacing: Any,
+                   allowed: Any, replicates: Any, subjects: Any, variability: Any, groups: Any, prior: Any,
+                   draws: Any, seed: int) -> tuple[DesignProblem, dict[str, Any]]:
+    """Validate the arguments (one line each, in keyword words) and set up the problem."""
     values_all, free = _parameters(template, values, fixed, estimate)
     lo, hi = _window(window)
     layout, counts = _groups(n, subjects, groups)
@@ -431,6 +453,8 @@ def design_samples(
     if any(k * spacing > 0 and (k - 1) * spacing > hi - lo for k in layout):
         raise UsageError(f"{max(layout)} samples at least {spacing:g} apart do not fit in the window {lo:g} to {hi:g}")
     population = subjects is not None or groups is not None
+    if variability and not population:
+        raise UsageError("variability= needs subjects= (or groups=): it describes a population design")
     model = compiled(template)
     obs_names = template.observable_names if observed is None else tuple(observed)
     for o in obs_names:
@@ -443,18 +467,17 @@ def design_samples(
             raise UsageError(f"doses= must hold Dose objects, got {type(d).__name__}")
         resolve_route(d.route, tuple(model.routes), template.name)
     names = list(model.parameter_names)
-    thetas = _draws(prior, values_all, names, draws, seed)
     nominal = np.array([values_all[k] for k in names])
     cand = _allowed(allowed, lo, hi, layout, spacing)
-    start_lo = lo
-    events = dose_events(model, dose_list, nominal)
     notes = []
-    if any(abs(e - lo) <= 1e-12 * max(1.0, abs(lo)) for e in events) and cand is None:
+    start_lo = lo
+    if cand is None and any(abs(e - lo) <= 1e-12 * max(1.0, abs(lo)) for e in dose_events(model, dose_list, nominal)):
         start_lo = lo + 1e-3 * (hi - lo)
         notes.append(f"a dose is given at the window start, where a sample would come before it; the earliest "
-                     f"time is {start_lo:.3g} {template.time_unit} (as soon after the dose as practical)")
+                     f"time is {start_lo - lo:.3g} {template.time_unit} after it (as soon after the dose as practical)")
     problem = DesignProblem(
-        model=model, thetas=thetas, nominal=nominal, estimated=tuple(names.index(k) for k in free),
+        model=model, thetas=_draws(prior, values_all, names, draws, seed), nominal=nominal,
+        estimated=tuple(names.index(k) for k in free),
         observed=tuple(template.observable_names.index(o) for o in obs_names), doses=dose_list,
         window=(start_lo, hi), error=ResidualError("additive", (1.0,) * len(obs_names)),
         criterion=make_criterion("D", free, [1.0] * len(free)), layout=layout, subjects=counts, replicates=reps,
@@ -464,53 +487,49 @@ def design_samples(
     if problem.error.sd_assumed:
         notes.append("residual SD not given: taken as 10% of the largest prediction ("
                      + ", ".join(f"{o} {v:.3g}" for o, v in zip(obs_names, problem.error.sd, strict=True)) + ")")
-    bsv = Variability.from_mapping(variability or {}, free) if population else None
-    if variability and not population:
-        raise UsageError("variability= needs subjects= (or groups=): it describes a population design")
-    problem.variability = bsv
-    labels = _labels(problem, free, obs_names)
-    problem.criterion = make_criterion(criterion, labels, problem.scale(), interest)
+    problem.variability = Variability.from_mapping(variability or {}, free) if population else None
+    problem.criterion = make_criterion(criterion, _labels(problem, free, obs_names), problem.scale(), interest)
     if not population and layout[0] * len(obs_names) < len(free):
         raise UsageError(f"n={layout[0]} samples of {len(obs_names)} output(s) cannot estimate {len(free)} parameters "
                          f"({', '.join(free)}); take more samples or hold some known (fixed=)")
     _check_information(problem, free)
-    if cand is not None:
-        found = discrete_search(problem.objective, layout, cand, spacing, starts, seed)
-    else:
-        found = continuous_search(problem.objective, layout, start_lo, hi, spacing, starts, seed)
+    setup = {"free": free, "values": values_all, "observed": obs_names, "allowed": cand, "notes": notes,
+             "window": (lo, hi), "population": population, "prior": dict(prior or {})}
+    return problem, setup
+
+
+def _record(template: Template, problem: DesignProblem, setup: Mapping[str, Any], found: Any, value: float,
+            check: EquivalenceCheck, sens: Mapping[str, Any], seconds: float) -> SamplingDesign:
+    """The design record: times, expected precision, the check, the curves for the figure."""
+    free, obs_names, cand, bsv = setup["free"], setup["observed"], setup["allowed"], problem.variability
     x = found.x
-    value = problem.exact_value(x)
-    if not math.isfinite(value):
-        raise UsageError(f"no schedule of {'/'.join(map(str, layout))} samples in the window can estimate "
-                         f"{', '.join(free)}: the information stays singular; add samples, observe more, or fix "
-                         "parameters (fixed=)")
-    check, sens = check_equivalence(problem, x, cand, seed)
-    M0 = problem.exact_information(x, nominal)[0]
-    rse = _rse(M0, problem.scale())
+    rse = _rse(problem.exact_information(x, problem.nominal)[0], problem.scale())
     p, q = len(free), (len(bsv.names) if bsv else 0)
-    blocks = problem._blocks()
-    crit_name = problem.criterion.describe() + (f", expected over {len(thetas)} draws" if prior else "")
-    f_grid = problem.nominal_curves().f
+    prior = setup["prior"]
+    crit_name = problem.criterion.describe() + (f", expected over {len(problem.thetas)} draws" if prior else "")
+    curves = problem.nominal_curves()
     return SamplingDesign(
-        template=template.name, time_unit=template.time_unit, criterion=crit_name, population=population,
-        groups=tuple(DesignGroup(counts[g], tuple(float(t) for t in x[b]), tuple(int(r) for r in reps[g]))
-                     for g, b in enumerate(blocks)),
-        parameters=tuple(free), values=values_all, observed=tuple(obs_names), error=problem.error,
-        variability=bsv.to_dict() if bsv else {}, prior=dict(prior or {}), draws=len(thetas) if prior else 0,
+        template=template.name, time_unit=template.time_unit, criterion=crit_name, population=setup["population"],
+        groups=tuple(DesignGroup(problem.subjects[g], tuple(float(t) for t in x[b]),
+                                 tuple(int(r) for r in problem.replicates[g]))
+                     for g, b in enumerate(problem._blocks())),
+        parameters=tuple(free), values=setup["values"], observed=tuple(obs_names), error=problem.error,
+        variability=bsv.to_dict() if bsv else {}, prior=prior, draws=len(problem.thetas) if prior else 0,
         expected_rse=dict(zip(free, rse[:p].tolist(), strict=True)),
         expected_rse_variance=dict(zip(bsv.names, rse[p:p + q].tolist(), strict=True)) if bsv else {},
         expected_rse_error=(dict(zip(problem.error.parameter_names(obs_names), rse[p + q:].tolist(), strict=True))
                             if bsv else {}),
         value=value, equivalence=check,
         search={"method": found.method, "starts": found.starts, "agreeing": found.agreeing},
-        window=(lo, hi), min_spacing=spacing, allowed=None if cand is None else tuple(float(c) for c in cand),
-        doses=tuple(_dose_dict(d) for d in dose_list),
-        curve={"time": problem.nominal_curves().grid.tolist(),
-               "prediction": {o: f_grid[:, i].tolist() for i, o in enumerate(obs_names)}},
+        window=setup["window"], min_spacing=problem.spacing,
+        allowed=None if cand is None else tuple(float(c) for c in cand),
+        doses=tuple(_dose_dict(d) for d in problem.doses),
+        curve={"time": curves.grid.tolist(),
+               "prediction": {o: curves.f[:, i].tolist() for i, o in enumerate(obs_names)}},
         sensitivity=sens,
         units={"time": template.time_unit} | {o: template.observable(o).unit for o in obs_names}
-        | {k: template.parameter(k).unit for k in names},
-        notes=tuple(notes), seconds=time.monotonic() - started, _problem=problem,
+        | {k: template.parameter(k).unit for k in problem.model.parameter_names},
+        notes=tuple(setup["notes"]), seconds=seconds, _problem=problem,
     )
 
 
