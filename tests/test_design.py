@@ -3,6 +3,7 @@ variances and the general equivalence theorem."""
 
 from __future__ import annotations
 
+import functools
 import itertools
 import json
 import math
@@ -46,6 +47,12 @@ unit = "mg/L"
 ''')
 
 
+@functools.cache
+def box_lucas() -> SamplingDesign:
+    """The Box & Lucas two-point design, computed once for the tests that read it."""
+    return design_samples(ORAL, n=2, **BOX_LUCAS)
+
+
 def box_lucas_curve(t, k1, k2):
     """y = θ1/(θ1 − θ2)·(e^{−θ2 t} − e^{−θ1 t}) (Box & Lucas 1959, Biometrika 46:77)."""
     return k1 / (k1 - k2) * (np.exp(-k2 * t) - np.exp(-k1 * t))
@@ -55,12 +62,12 @@ class TestBoxLucas:
     def test_published_two_point_design(self):
         """The D-optimal two-point design for θ1 = 0.7, θ2 = 0.2 under constant variance is
         t = 1.23 and 6.86 (Box & Lucas 1959, Biometrika 46:77-90)."""
-        d = design_samples(ORAL, n=2, **BOX_LUCAS)
+        d = box_lucas()
         np.testing.assert_allclose(d.times, [1.23, 6.86], atol=0.005)
 
     def test_the_model_is_the_published_one(self):
         """one-comp-oral with V = 1 and a unit oral dose is the Box & Lucas response."""
-        d = design_samples(ORAL, n=2, **BOX_LUCAS)
+        d = box_lucas()
         t = np.asarray(d.curve["time"])
         np.testing.assert_allclose(d.curve["prediction"]["concentration"], box_lucas_curve(t, 0.7, 0.2),
                                    rtol=1e-9, atol=1e-12)
@@ -75,13 +82,13 @@ class TestBoxLucas:
         g2 = k1 / (k1 - k2) ** 2 * (e2 - e1) - k1 / (k1 - k2) * t * e2
         det = (g1[:, None] * g2[None, :] - g2[:, None] * g1[None, :]) ** 2
         i, j = np.unravel_index(np.argmax(np.triu(det)), det.shape)
-        d = design_samples(ORAL, n=2, **BOX_LUCAS)
+        d = box_lucas()
         np.testing.assert_allclose(sorted([t[i], t[j]]), d.times, atol=0.011)
 
     def test_equivalence_theorem_holds(self):
         """At the optimum d(t) ≤ 2 everywhere, with equality at the two times (Kiefer &
         Wolfowitz 1960)."""
-        d = design_samples(ORAL, n=2, **BOX_LUCAS)
+        d = box_lucas()
         c = d.equivalence
         assert c.holds and c.bound == 2.0
         assert max(d.sensitivity["value"]) <= 2.0 * (1 + 1e-3)
@@ -134,7 +141,7 @@ class TestWorkedByHand:
     def test_efficiency_invariances(self):
         """A design relative to itself is 1; the same times twice carry twice the
         information, so D-efficiency 2 (M doubles, (det 2M/det M)^(1/p) = 2)."""
-        d = design_samples(ORAL, n=2, **BOX_LUCAS)
+        d = box_lucas()
         assert d.efficiency(d.times) == pytest.approx(1.0, rel=1e-9)
         assert d.efficiency(list(d.times) * 2) == pytest.approx(2.0, rel=1e-9)
         assert d.efficiency([0.5, 2, 8]) < d.efficiency(list(d.times) + [4.0])
@@ -250,10 +257,48 @@ class TestErrors:
             design_samples(load_template("predator-prey"), n=6, window=(0, 20), observed=["prey"])
 
 
+class TestCriteriaOnTextbookDesigns:
+    """Quadratic regression y = β0 + β1 x + β2 x² on [−1, 1] (Atkinson, Donev & Tobias 2007,
+    Optimum Experimental Designs, with SAS, ch. 11 and 17)."""
+
+    x = np.linspace(-1, 1, 2001)
+
+    def _info(self, x):
+        f = np.stack([np.ones_like(x), x, x**2], axis=-1)
+        return np.einsum("...i,...j->...ij", f, f)
+
+    def test_d_optimal_quadratic(self):
+        """D-optimal: −1, 0, 1 with weights 1/3; d(x) ≤ 3 with equality at the support."""
+        from compartments.design.criteria import DOptimal
+
+        M = (self._info(np.array([-1.0, 0.0, 1.0])) / 3).sum(axis=0)
+        d = DOptimal().sensitivity(M, self._info(self.x))
+        assert d.max() == pytest.approx(3.0, rel=1e-9)
+        np.testing.assert_allclose(DOptimal().sensitivity(M, self._info(np.array([-1.0, 0.0, 1.0]))), 3.0)
+
+    def test_ds_optimal_for_the_quadratic_term(self):
+        """Ds-optimal for β2: −1, 0, 1 with weights 1/4, 1/2, 1/4; its sensitivity ≤ 1."""
+        from compartments.design.criteria import DsOptimal
+
+        M = np.einsum("g,gij->ij", np.array([0.25, 0.5, 0.25]), self._info(np.array([-1.0, 0.0, 1.0])))
+        c = DsOptimal(interest=(2,), labels=("b2",))
+        d = c.sensitivity(M, self._info(self.x))
+        assert d.max() == pytest.approx(1.0, rel=1e-9) and c.bound(M) == 1.0
+        equal = (self._info(np.array([-1.0, 0.0, 1.0])) / 3).sum(axis=0)
+        assert c.sensitivity(equal, self._info(self.x)).max() > 1.0 + 1e-3  # equal weights are not Ds-optimal
+
+    def test_ds_on_every_parameter_is_d(self):
+        """Ds with every parameter of interest is D-optimality."""
+        from compartments.design.criteria import DOptimal, DsOptimal
+
+        M = (self._info(np.array([-1.0, 0.3, 1.0]))).sum(axis=0)
+        assert float(DsOptimal(interest=(0, 1, 2)).value(M)) == pytest.approx(float(DOptimal().value(M)))
+
+
 class TestRecord:
     def test_json_round_trip(self):
         """to_dict is plain JSON (no NaN) and from_dict restores it."""
-        d = design_samples(ORAL, n=2, **BOX_LUCAS)
+        d = box_lucas()
         text = json.dumps(d.to_dict(), allow_nan=False)
         back = SamplingDesign.from_dict(json.loads(text))
         assert back.to_dict() == d.to_dict()
@@ -293,7 +338,7 @@ class TestPresentation:
         """The lower panel plots d(t) and the bound; the upper one the sample times."""
         from compartments.report.design_plots import design_figure
 
-        d = design_samples(ORAL, n=2, **BOX_LUCAS)
+        d = box_lucas()
         fig = design_figure(d)
         top, bottom = fig.axes
         lines = {line.get_label(): line for line in bottom.get_lines()}

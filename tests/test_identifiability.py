@@ -3,6 +3,7 @@ exact reference and simulations of parameter sets that should give the same outp
 
 from __future__ import annotations
 
+import functools
 import signal
 import threading
 
@@ -25,6 +26,18 @@ from compartments.template import parse_template
 SLOW_OK = 300.0
 
 T = np.linspace(0.05, 30.0, 60)
+
+
+@functools.cache
+def flip_flop() -> IdentifiabilityResult:
+    """one-comp-oral with its defaults, computed once for the tests that read it."""
+    return identifiability(load_template("one-comp-oral"), timeout=SLOW_OK)
+
+
+@functools.cache
+def prey_only() -> IdentifiabilityResult:
+    """predator-prey with only the prey observed, computed once."""
+    return identifiability(load_template("predator-prey"), observed=["prey"], timeout=SLOW_OK)
 
 
 def _two_compartment(dose_state: str) -> str:
@@ -94,7 +107,7 @@ class TestPublished:
         """One compartment with first-order absorption: ka, ke and V only locally
         identifiable, two parameter sets per output (the flip-flop pair; Godfrey 1983,
         ch. 6; the Bateman function is symmetric in ka and ke)."""
-        r = identifiability(load_template("one-comp-oral"), timeout=SLOW_OK)
+        r = flip_flop()
         assert r.status == {"ka": "local", "ke": "local", "V": "local"}
         assert r.solutions == 2 and r.admissible == 2
         (other,) = r.alternatives
@@ -107,7 +120,7 @@ class TestPublished:
 
     def test_flip_flop_pair_simulates_to_the_same_curve(self):
         """The two parameter sets found give the same concentrations (simulated)."""
-        r = identifiability(load_template("one-comp-oral"), timeout=SLOW_OK)
+        r = flip_flop()
         m = compile_model(load_template("one-comp-oral"))
         dose = [Dose(0.0, 100.0, "oral")]
         a = simulate(m, dict(r.point), dose, T).observable()
@@ -176,7 +189,7 @@ class TestWorkedByHand:
         so x(t) fixes α, γ, δ and x(0) but β and y(0) only as β·y(0) (worked by hand: the
         scaling y → λy, β → β/λ leaves x unchanged, the similarity-transformation argument
         of Vajda, Godfrey & Rabitz 1989, Math Biosci 93:217)."""
-        r = identifiability(load_template("predator-prey"), observed=["prey"], timeout=SLOW_OK)
+        r = prey_only()
         assert r.status == {"alpha": "global", "beta": "none", "delta": "global", "gamma": "global",
                             "prey0": "global", "predator0": "none"}
         assert [str(c) for c in r.combinations] == ["beta*predator0"]
@@ -326,6 +339,6 @@ class TestInputs:
 
     def test_round_trip(self):
         """to_dict and from_dict keep the answer, combinations included."""
-        r = identifiability(load_template("predator-prey"), observed=["prey"], timeout=SLOW_OK)
+        r = prey_only()
         back = IdentifiabilityResult.from_dict(r.to_dict())
         assert back.to_dict() == r.to_dict()

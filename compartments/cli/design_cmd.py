@@ -136,9 +136,10 @@ def design_command(
 
     Console().print(design_report(d, compared))
     if json_out is not None:
+        from .. import __version__
         from ..report.export import write_json
 
-        write_json({"design": d.to_dict(), "compared": [{"times": c, "efficiency": e} for c, e in compared],
+        write_json({"document": "compartments sampling design", "version": __version__, "design": d.to_dict(), "compared": [{"times": c, "efficiency": e} for c, e in compared],
                     "cautions": list(_cautions())}, json_out)
         typer.echo(f"wrote {json_out}")
     if plot is not None:

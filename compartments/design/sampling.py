@@ -456,7 +456,8 @@ def _build_problem(template: Template, values: Any, fixed: Any, estimate: Any, d
     if variability and not population:
         raise UsageError("variability= needs subjects= (or groups=): it describes a population design")
     model = compiled(template)
-    obs_names = template.observable_names if observed is None else tuple(observed)
+    obs_names = template.observable_names if observed is None else (
+        (observed,) if isinstance(observed, str) else tuple(observed))
     for o in obs_names:
         if o not in template.observable_names:
             raise UsageError(f"observed={o!r} is not an observable of {template.name!r}; it has "

@@ -45,12 +45,16 @@ def design_figure(d: Any) -> Figure:
     s = d.sensitivity
     ts = np.asarray(s["time"])
     if "slices" in s:
+        several = len(d.groups) > 1
         colors = _palette(len(s["slices"]))
-        for c, sl in zip(colors, s["slices"], strict=True):
+        styles = ("-", "--", "-.", ":")
+        for k, sl in enumerate(s["slices"]):
             g, i = sl["group"], sl["sample"]
-            label = f"group {g + 1}, sample {i + 1} moved" if len(d.groups) > 1 else f"sample {i + 1} moved"
-            bottom.plot(ts, sl["value"], color=c, lw=1.3, label=label)
-            bottom.plot([d.groups[g].times[i]], [s["bound"]], "o", color=c, ms=5)
+            c = group_colors[g] if several else colors[k]
+            label = f"group {g + 1}, sample {i + 1} moved" if several else f"sample {i + 1} moved"
+            bottom.plot(ts, sl["value"], color=c, lw=1.3, ls=styles[i % len(styles)] if several else "-", label=label)
+            at = d.groups[g].times[i]
+            bottom.plot([at], [np.interp(at, ts, sl["value"])], "o", color=c, ms=5)
         bottom.set_ylabel("sensitivity d")
     else:
         bottom.plot(ts, s["value"], color=obs_colors[0], lw=1.5, label="sensitivity function d(t)")
@@ -59,7 +63,7 @@ def design_figure(d: Any) -> Figure:
     bottom.axhline(s["bound"], color="0.3", ls=":", lw=1.2, label=f"equivalence-theorem bound ({s['bound']:.3g})")
     top_value = max(s["bound"], float(np.nanmax(_values(s))))
     bottom.set_ylim(0, top_value * 1.12)
-    bottom.set_xlabel(f"time after the first dose ({tu})")
+    bottom.set_xlabel(f"time after the first dose ({tu})" if d.doses else f"time ({tu})")
     bottom.legend(loc="best", fontsize=8, frameon=True)
     bottom.set_xlim(d.window[0], d.window[1])
     return fig
