@@ -185,7 +185,7 @@ def _elementary(problem: DesignProblem, Mn: Array, X: Array, g: int, exact: bool
 def _population(problem: DesignProblem, x: Array, Mn: Array, bound: float, allowed: Array | None, seed: int
                 ) -> tuple[EquivalenceCheck, dict[str, Any]]:
     lo, hi = problem.window
-    blocks = problem._blocks()
+    blocks = problem.blocks()
     best, best_at = -np.inf, np.zeros(0)
     for g, b in enumerate(blocks):
         own = _elementary(problem, Mn, x[b][None, :], g, exact=True)[0]

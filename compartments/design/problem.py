@@ -21,6 +21,7 @@ from .criteria import Criterion
 from .curves import Curves, build_curves, exact_outputs
 from .fisher import ResidualError, sample_information
 from .population_design import Variability, population_information
+from .search import blocks
 
 Array = NDArray[np.float64]
 
@@ -122,19 +123,16 @@ class DesignProblem:
         return self.subjects[g] * population_information(J, f, th, self.random, self.variability.variances,
                                                          self.error, r)
 
-    def _blocks(self) -> list[slice]:
-        out, k = [], 0
-        for n in self.layout:
-            out.append(slice(k, k + n))
-            k += n
-        return out
+    def blocks(self) -> list[slice]:
+        """The slice of each group's times in a flat schedule."""
+        return blocks(self.layout)
 
     def information(self, X: Array) -> Array:
         """Information matrices (K, S, P, P) of schedules X (S, N), from the splines."""
         X = np.atleast_2d(X)
         out = np.zeros((len(self.thetas), X.shape[0], self.size, self.size))
         for k, c in enumerate(self.curves()):
-            for g, b in enumerate(self._blocks()):
+            for g, b in enumerate(self.blocks()):
                 f, J = c.at(X[:, b])
                 out[k] += self._group_information(f, J, c.theta, g)
         return out
@@ -146,7 +144,7 @@ class DesignProblem:
         out = np.zeros((len(thetas), self.size, self.size))
         for k, th in enumerate(thetas):
             f, J = exact_outputs(self.model, th, self.doses, x, self.observed, self.estimated)
-            for g, b in enumerate(self._blocks()):
+            for g, b in enumerate(self.blocks()):
                 out[k] += self._group_information(f[None, b], J[None, b], th, g)[0]
         return out
 

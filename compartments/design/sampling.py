@@ -513,7 +513,7 @@ def _record(template: Template, problem: DesignProblem, setup: Mapping[str, Any]
         template=template.name, time_unit=template.time_unit, criterion=crit_name, population=setup["population"],
         groups=tuple(DesignGroup(problem.subjects[g], tuple(float(t) for t in x[b]),
                                  tuple(int(r) for r in problem.replicates[g]))
-                     for g, b in enumerate(problem._blocks())),
+                     for g, b in enumerate(problem.blocks())),
         parameters=tuple(free), values=setup["values"], observed=tuple(obs_names), error=problem.error,
         variability=bsv.to_dict() if bsv else {}, prior=prior, draws=len(problem.thetas) if prior else 0,
         expected_rse=dict(zip(free, rse[:p].tolist(), strict=True)),

@@ -32,7 +32,7 @@ from scipy.stats import qmc
 Array = NDArray[np.float64]
 Objective = Callable[[Array], Array]
 
-__all__ = ["SearchResult", "continuous_search", "discrete_search", "repair"]
+__all__ = ["SearchResult", "blocks", "continuous_search", "discrete_search", "repair"]
 
 #: Most combinations of allowed times evaluated one by one.
 MAX_ENUMERATED = 20_000
@@ -63,7 +63,8 @@ class SearchResult:
     method: str
 
 
-def _blocks(layout: Sequence[int]) -> list[slice]:
+def blocks(layout: Sequence[int]) -> list[slice]:
+    """The slice of each group's times in a flat schedule."""
     out, k = [], 0
     for n in layout:
         out.append(slice(k, k + n))
@@ -78,7 +79,7 @@ def repair(X: Array, layout: Sequence[int], lo: float, hi: float, spacing: float
     [[1.0, 2.0, 5.0]]
     """
     X = np.array(X, dtype=float, copy=True)
-    for b in _blocks(layout):
+    for b in blocks(layout):
         block = np.sort(np.clip(X[..., b], lo, hi), axis=-1)
         if spacing > 0:
             n = block.shape[-1]
@@ -94,7 +95,7 @@ def repair(X: Array, layout: Sequence[int], lo: float, hi: float, spacing: float
 def _constraints(layout: Sequence[int], spacing: float) -> list[dict]:
     rows = []
     N = sum(layout)
-    for b in _blocks(layout):
+    for b in blocks(layout):
         for i in range(b.start, b.stop - 1):
             row = np.zeros(N)
             row[i], row[i + 1] = -1.0, 1.0
@@ -186,10 +187,10 @@ def _exchange(objective: Objective, layout: Sequence[int], C: Array, spacing: fl
               rng: np.random.Generator) -> tuple[float, Array]:
     x = _random_schedule(layout, C, spacing, rng)
     current = float(objective(x[None, :])[0])
-    blocks = _blocks(layout)
+    parts = blocks(layout)
     for _ in range(100):
         improved = False
-        for b in blocks:
+        for b in parts:
             for k in range(b.start, b.stop):
                 trials = np.repeat(x[None, :], len(C), axis=0)
                 trials[:, k] = C
@@ -203,6 +204,6 @@ def _exchange(objective: Objective, layout: Sequence[int], C: Array, spacing: fl
                     x, current, improved = trials[j], float(values[j]), True
         if not improved:
             break
-    for b in blocks:
+    for b in parts:
         x[b] = np.sort(x[b])
     return current, x
