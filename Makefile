@@ -37,6 +37,7 @@ bench: $(TSTAMP)
 	$(BIN)/python benchmarks/ode_driver.py
 	$(BIN)/python benchmarks/estimator.py
 	$(BIN)/python benchmarks/cohort.py
+	$(BIN)/python benchmarks/design.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info demo/out benchmarks/out .pytest_cache

@@ -31,10 +31,14 @@ __all__ = [
     "Dose",
     "FitError",
     "FitResult",
+    "IdentifiabilityResult",
+    "SamplingDesign",
     "TemplateError",
     "UsageError",
     "compile_model",
+    "design_samples",
     "fit",
+    "identifiability",
     "list_templates",
     "load_template",
     "read_study",
@@ -66,6 +70,10 @@ def __getattr__(name: str) -> Any:
         from .simulate import simulate
 
         return simulate
+    if name in ("identifiability", "IdentifiabilityResult", "design_samples", "SamplingDesign"):
+        from . import design
+
+        return getattr(design, name)
     if name == "compile_model":
         from .model import compile_model
 

@@ -45,7 +45,7 @@ def _root(
 def _register() -> None:
     from . import data_cmd, templates_cmd  # noqa: F401
 
-    for mod in ("fit_cmd", "cohort_cmd"):
+    for mod in ("fit_cmd", "cohort_cmd", "design_cmd"):
         try:
             __import__(f"{__name__}.{mod}")
         except ModuleNotFoundError as exc:  # a command module not present in this build

@@ -30,6 +30,19 @@ def parse_assignments(items: list[str] | None, what: str) -> dict[str, float]:
     return out
 
 
+def split_names(items: list[str] | None) -> list[str]:
+    """``["ka,ke", "V"]`` → ``["ka", "ke", "V"]`` (repeatable or comma-separated options)."""
+    return [x.strip() for item in items or [] for x in item.split(",") if x.strip()]
+
+
+def check_names(given: list[str], allowed: tuple[str, ...], option: str, what: str) -> None:
+    """One line for a name the template lacks, with the names it has (``what``: plural)."""
+    for g in given:
+        if g not in allowed:
+            raise UsageError(f"{option} {g}: template has no such {what[:-1]}; its {what}: "
+                             f"{', '.join(allowed) or 'none'}")
+
+
 def parse_dose(text: str) -> list[Dose]:
     """Parse ``AMOUNT[@TIME][:ROUTE][/DURATION][xCOUNT/EVERY]``.
 

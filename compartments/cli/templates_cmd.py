@@ -6,8 +6,16 @@ from pathlib import Path
 
 import typer
 
+from ..errors import UsageError
 from . import app
-from .options import parse_assignments, parse_dose, parse_times, writable_target
+from .options import (
+    check_names,
+    parse_assignments,
+    parse_dose,
+    parse_times,
+    split_names,
+    writable_target,
+)
 
 TEMPLATES_OPT = typer.Option(None, "--templates", metavar="DIR",
                              help="Folder with user template files (repeatable; also $COMPARTMENTS_TEMPLATES).")
@@ -34,15 +42,37 @@ def show_command(
     templates: list[Path] = TEMPLATES_OPT,
     setting: list[str] = typer.Option(None, "--set", metavar="NAME=VALUE",
                                       help="Override a template setting (e.g. n_transit=5)."),
+    observe: list[str] = typer.Option(None, "--observe", metavar="NAME",
+                                      help="Observables measured, for the identifiability answer (default all)."),
+    route: list[str] = typer.Option(None, "--route", metavar="ROUTE",
+                                    help="Dose routes used, each a separate occasion (default every route)."),
+    known: list[str] = typer.Option(None, "--known", metavar="NAME",
+                                    help="Parameters taken as known (default those the template holds fixed)."),
+    timeout: float = typer.Option(10.0, "--timeout", help="Time bound of the identifiability answer (s)."),
 ) -> None:
-    """Show a template: equations, parameters, units, dose inputs, derived quantities."""
+    """Show a template: equations, parameters, units, dose inputs, derived quantities, and
+    which parameters the observed outputs can identify at all (structural identifiability)."""
     from rich.console import Console
 
+    from ..design import identifiability
     from ..library import load_template
     from ..report.templates import template_detail
 
     t = load_template(name, settings=parse_assignments(setting, "--set") or None, search=templates or ())
-    Console().print(template_detail(t))
+    observed, routes, held = split_names(observe), split_names(route), split_names(known)
+    check_names(observed, t.observable_names, "--observe", "observables")
+    check_names(routes, tuple(t.doses), "--route", "dose routes")
+    check_names(held, t.parameter_names, "--known", "parameters")
+    if not timeout > 0:
+        raise UsageError(f"--timeout {timeout:g}: give a positive number of seconds")
+    r = identifiability(t, observed or None, routes=routes if route else None, known=held if known else None,
+                        timeout=timeout)
+    from ..report.design import identifiability_panel
+
+    console = Console()
+    console.print(template_detail(t))
+    console.print(identifiability_panel(r))
+
 
 
 @app.command("simulate")
