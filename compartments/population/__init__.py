@@ -1,0 +1,1 @@
+"""Population (mixed-effects) estimation."""
