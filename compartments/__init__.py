@@ -31,10 +31,12 @@ __all__ = [
     "Dose",
     "FitError",
     "FitResult",
+    "PopulationResult",
     "TemplateError",
     "UsageError",
     "compile_model",
     "fit",
+    "fit_population",
     "list_templates",
     "load_template",
     "read_study",
@@ -58,6 +60,10 @@ def __getattr__(name: str) -> Any:
         from . import cohort
 
         return getattr(cohort, name)
+    if name in ("fit_population", "PopulationResult"):
+        from . import population
+
+        return getattr(population, name)
     if name == "read_study":
         from .study import read_study
 

@@ -14,8 +14,9 @@ for log-normal error), and builds from them everything the estimators need, per 
   FOCE-I (``w = u_f²/σ²`` for a quantified value — the residual variance evaluated at the
   individual estimate is the interaction; ``w = ½ t_zz z_f²`` for a censored one), with its
   derivatives in ``f`` and ``s``;
-* the expected information ``h`` of ``t`` in ``f`` (``2u_f²/σ² + 4σ_f²/σ²``) for Fisher
-  scoring of the individual estimates.
+* the expected information of ``t`` in ``(f, s)`` (``h = 2u_f²/σ² + 4σ_f²/σ²`` in ``f``,
+  ``4σ_f σ_s/σ²`` and ``4σ_s σ_sᵀ/σ²``; ``t_zz`` times the outer product of ``z``'s
+  derivatives for a censored row) for Fisher scoring.
 
 Error parameters are per observable and on the log scale (``s = log a``, ``log b`` ...), in
 the order of :func:`compartments.estimate.likelihood.error_parameter_names`.
@@ -175,6 +176,8 @@ class Terms:
     w_f: Array | None = None
     w_s: Array | None = None  # (..., E)
     h: Array | None = None
+    h_fs: Array | None = None  # (..., E) expected information, f–s block
+    h_ss: Array | None = None  # (..., E, E) expected information, s–s block
 
 
 def _mills(z: Array) -> tuple[Array, Array]:
@@ -214,8 +217,11 @@ def terms(residual: ResidualModel, rows: Rows, f: Array, s: Array, order: int = 
     t_f = np.where(unc, 2 * q.f / sd + 2 * z * z_f, np.where(cens, t_z * z_f, 0.0))
     t_s = np.where(um, 2 * q.s / sd[..., None] + 2 * (z[..., None] * z_s), np.where(cm, t_z[..., None] * z_s, 0.0))
     h = np.where(unc, 2 * u_f**2 / sd**2 + 4 * q.f**2 / sd**2, np.where(cens, t_zz * z_f**2, 0.0))
+    h_fs = np.where(um, (4 * q.f / sd**2)[..., None] * q.s, np.where(cm, (t_zz * z_f)[..., None] * z_s, 0.0))
+    h_ss = np.where(um[..., None], 4 * (q.s / sd[..., None])[..., :, None] * (q.s / sd[..., None])[..., None, :],
+                    np.where(cm[..., None], t_zz[..., None, None] * z_s[..., :, None] * z_s[..., None, :], 0.0))
     if order == 1:
-        return Terms(t, t_f=t_f, t_s=t_s, h=h)
+        return Terms(t, t_f=t_f, t_s=t_s, h=h, h_fs=h_fs, h_ss=h_ss)
     z_ff = (-u_ff - 2 * z_f * q.f - z * q.ff) / sd
     z_fs = -(z_f[..., None] * q.s + z_s * q.f[..., None] + z[..., None] * q.fs) / sd[..., None]
     t_ff = np.where(unc, 2 * q.ff / sd - 2 * q.f**2 / sd**2 + 2 * z_f**2 + 2 * z * z_ff,
@@ -230,7 +236,7 @@ def terms(residual: ResidualModel, rows: Rows, f: Array, s: Array, order: int = 
                    np.where(cens, 0.5 * t_zzz * z_f**3 + t_zz * z_f * z_ff, 0.0))
     w_s = np.where(um, (-2 * u_f**2 / sd**3)[..., None] * q.s,
                    np.where(cm, (0.5 * t_zzz * z_f**2)[..., None] * z_s + (t_zz * z_f)[..., None] * z_fs, 0.0))
-    return Terms(t, t_f=t_f, t_ff=t_ff, t_s=t_s, t_fs=t_fs, w=w, w_f=w_f, w_s=w_s, h=h)
+    return Terms(t, t_f=t_f, t_ff=t_ff, t_s=t_s, t_fs=t_fs, w=w, w_f=w_f, w_s=w_s, h=h, h_fs=h_fs, h_ss=h_ss)
 
 
 def initial_error(residual: ResidualModel, y: Array, f: Array, k: NDArray[np.int64],
