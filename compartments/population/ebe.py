@@ -68,7 +68,7 @@ class Modes:
 
 
 def solve_modes(pm: PopulationModel, design: Design, ev: Evaluator, m: Array, s: Array, omega: Array,
-                eta0: Array, *, tol: float = 1e-9, max_iter: int = 100) -> Modes:
+                eta0: Array, *, tol: float = 1e-7, max_iter: int = 50) -> Modes:
     """Conditional modes η̂ of every subject (Fisher scoring with step halving).
 
     Parameters
@@ -111,11 +111,11 @@ def solve_modes(pm: PopulationModel, design: Design, ev: Evaluator, m: Array, s:
             break
         alpha = np.ones(N)
         todo = active.copy()
-        for _ in range(30):
+        for _ in range(12):
             sel = np.flatnonzero(todo)
             trial = eta[sel] + alpha[sel, None] * step[sel]
             new = evaluate(pm, design, ev, m, s, oi, trial, sel, order=1)
-            ok = new.value <= cur.value[sel] + 1e-12 * np.abs(cur.value[sel])
+            ok = new.value <= cur.value[sel] + 1e-10 * (1.0 + np.abs(cur.value[sel]))
             if ok.any():
                 acc = sel[ok]
                 eta[acc] = trial[ok]
@@ -131,6 +131,8 @@ def solve_modes(pm: PopulationModel, design: Design, ev: Evaluator, m: Array, s:
             todo &= ~tiny
             if not todo.any():
                 break
+        stuck = todo  # no decrease along the scoring direction: the mode to working precision
+        done |= stuck
     converged = done.copy()
     return Modes(cur, converged, it)
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -16,10 +17,9 @@ from ..estimate.problem import make_problem, set_aside_zero_predictions
 from ..model import compiled
 from ..template import Template
 from .covariates import build_effects
-from .design import build_design
+from .design import Design, build_design
 from .diagnostics import bound_sentences, predictions_table, shrinkage, warnings_for
-from .ebe import solve_modes
-from .evaluate import make_evaluator
+from .evaluate import Evaluator, make_evaluator
 from .foce import fit_foce, foce_objective
 from .likelihood import importance_sampling
 from .model import PopulationModel, parse_blocks, parse_random
@@ -134,26 +134,10 @@ def fit_population(
         from ..library import load_template
 
         template = load_template(template)
-    subjects = _subjects(study)
-    model = compiled(template)
+    setup = prepare(study, template, random, covariates=covariates, error=error, variability=variability,
+                    fixed=fixed, estimate=estimate)
+    pm, design, ev, subjects, notes = setup.pm, setup.design, setup.ev, setup.subjects, setup.notes
     fixed = dict(fixed or {})
-    problem = make_problem(model, subjects, error=error, fixed=fixed, estimate=estimate)
-    problem, notes = set_aside_zero_predictions(problem)
-    if error == "lognormal" and np.any((problem.values <= 0) & ~problem.censored):
-        raise FitError("log-normal error needs positive values, but some observed values are ≤ 0; use "
-                       "error='additive' or 'combined', or mark them below the limit of quantification")
-    names = tuple(model.parameter_names[i] for i in problem.free)
-    residual = ResidualModel(error, model.observable_names, problem.floor)
-    design = build_design(problem.data, residual)
-    rnd = parse_random(random, names)
-    order = [n for n in names if n in rnd]
-    effects = build_effects(study if hasattr(study, "covariate_names") else _as_study(subjects), covariates, names)
-    pm = PopulationModel(model, problem.free, problem.base, tuple(names.index(n) for n in order),
-                         tuple(rnd[n] for n in order), parse_blocks(variability, order), effects, residual)
-    if design.total_obs - int(design.censored.sum()) < pm.size:
-        raise FitError(f"{design.total_obs} observations cannot determine the {pm.size} population parameters; "
-                       "use fewer random effects or covariates, or fix parameters")
-    ev = make_evaluator(model, design, problem.free)
     if starts == "data":
         st = data_starts(pm, design, subjects, template, error=error, fixed=fixed, estimate=tuple(estimate),
                          seed=seed, workers=workers, scheduler=scheduler)
@@ -174,6 +158,48 @@ def fit_population(
                    "stopping_rule": why}
     return _finish(pm, design, ev, x, method, converged, why, iterations, st, rng, covariance, level,
                    importance_draws, npde_draws, tuple(notes), trace, trace_labels, details, seed, t0, template)
+
+
+@dataclass(frozen=True, eq=False)
+class Setup:
+    """A population problem ready for the estimators."""
+
+    pm: PopulationModel
+    design: Design
+    ev: Evaluator
+    subjects: list[Any]
+    notes: tuple[str, ...]
+
+
+def prepare(study: Any, template: Template | str, random: Sequence[str] | Mapping[str, str], *,
+            covariates: Sequence[Any] = (), error: str = "proportional", variability: Any = "diagonal",
+            fixed: Mapping[str, float] | None = None, estimate: Sequence[str] = ()) -> Setup:
+    """Check the inputs and lay out the population problem (see :func:`fit_population`)."""
+    if isinstance(template, str):
+        from ..library import load_template
+
+        template = load_template(template)
+    subjects = _subjects(study)
+    model = compiled(template)
+    fixed = dict(fixed or {})
+    problem = make_problem(model, subjects, error=error, fixed=fixed, estimate=estimate)
+    problem, notes = set_aside_zero_predictions(problem)
+    if error == "lognormal" and np.any((problem.values <= 0) & ~problem.censored):
+        raise FitError("log-normal error needs positive values, but some observed values are ≤ 0; use "
+                       "error='additive' or 'combined', or mark them below the limit of quantification")
+    names = tuple(model.parameter_names[i] for i in problem.free)
+    residual = ResidualModel(error, model.observable_names, problem.floor)
+    design = build_design(problem.data, residual)
+    rnd = parse_random(random, names)
+    order = [n for n in names if n in rnd]
+    effects = build_effects(study if hasattr(study, "covariate_names") else _as_study(subjects), covariates, names)
+    pm = PopulationModel(model, problem.free, problem.base, tuple(names.index(n) for n in order),
+                         tuple(rnd[n] for n in order), parse_blocks(variability, order), effects, residual)
+    if design.total_obs - int(design.censored.sum()) < pm.size:
+        raise FitError(f"{design.total_obs} observations cannot determine the {pm.size} population parameters; "
+                       "use fewer random effects or covariates, or fix parameters")
+    ev = make_evaluator(model, design, problem.free)
+    return Setup(pm, design, ev, subjects, tuple(notes))
 
 
 def _as_study(subjects: list[Any]) -> Any:

@@ -324,6 +324,24 @@ class PopulationModel:
         out += [(-25.0, 10.0)] * self.n_error
         return out
 
+    def pack(self, typical: Mapping[str, float], omega: Array, error: Mapping[str, float],
+             effects: Mapping[str, float] | None = None) -> Array:
+        """The estimation vector from natural values (typical values, Ω, error parameters,
+        effects as reported: categorical factors, other forms β)."""
+        x = np.zeros(self.size)
+        sm, sb, sl, ss = self.slices
+        x[sm] = self.to_scale(np.array([typical[n] for n in self.names], dtype=float))
+        eff = dict(effects or {})
+        j = sb.start
+        for e in self.effects:
+            for lab in e.labels:
+                v = float(eff.get(lab, 1.0 if e.form == "categorical" else 0.0))
+                x[j] = np.log(v) if e.form == "categorical" else v
+                j += 1
+        x[sl] = self.chol_entries(np.asarray(omega, dtype=float))
+        x[ss] = np.log([error[n] for n in self.residual.names])
+        return x
+
     def reported_effects(self, x: Array) -> dict[str, float]:
         u = self.unpack(x)
         out: dict[str, float] = {}
