@@ -135,7 +135,7 @@ def _parse(item: Any) -> tuple[str, str, str, Any]:
 def _column_values(study: Any, column: str, parameter: str) -> list[Any]:
     names = list(getattr(study, "covariate_names", []))
     if column not in names:
-        notes = [n.message for n in getattr(study, "notes", ()) if getattr(n, "column", None) == column]
+        notes = [n.reason for n in getattr(study, "notes", ()) if getattr(n, "column", None) == column]
         varying = [m for m in notes if "changes within subject" in m]
         if varying:
             raise UsageError(

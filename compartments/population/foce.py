@@ -77,8 +77,8 @@ def _second_derivatives(pm: PopulationModel, design: Design, ev: Evaluator, m: A
 
 
 def foce_objective(pm: PopulationModel, design: Design, ev: Evaluator, x: Array, eta0: Array,
-                   *, gradient: bool = True) -> Objective:
-    """The FOCE-I objective (−2 log-likelihood) at ``x`` and its gradient."""
+                   *, gradient: bool = True, tol: float = 1e-9) -> Objective:
+    """The FOCE-I objective (−2 log-likelihood) at ``x`` and its gradient (``tol``: of the modes)."""
     N = design.n_subjects
     R = list(pm.random)
     u = pm.unpack(x)
@@ -86,7 +86,7 @@ def foce_objective(pm: PopulationModel, design: Design, ev: Evaluator, x: Array,
     m, dm = pm.typical(x, N)
     omega = pm.omega(x)
     oi = np.linalg.inv(omega)
-    modes = solve_modes(pm, design, ev, m, s, omega, eta0)
+    modes = solve_modes(pm, design, ev, m, s, omega, eta0, tol=tol)
     pt = modes.point
     if not gradient:
         pt = evaluate(pm, design, ev, m, s, oi, pt.eta, np.arange(N), order=1)
