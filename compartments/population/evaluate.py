@@ -85,17 +85,25 @@ def _batched(fn, theta: Array, shape: tuple[int, ...]) -> Array:
                            shape + (theta.shape[0],))
 
 
-def _expm(M: Array) -> Array:
-    """Matrix exponentials of a stack (K, d, d): torch's batched routine where available."""
+#: Batched matrix exponential: "torch" (``torch.linalg.matrix_exp``, float64) or "scipy"
+#: (``scipy.linalg.expm``). benchmarks/population.py measures the two; torch was faster.
+BACKENDS = ("torch", "scipy")
+
+
+def _expm(M: Array, backend: str = "torch") -> Array:
+    """Matrix exponentials of a stack (K, d, d)."""
     if M.shape[0] == 0:
         return M.copy()
-    try:
-        import torch
-    except ImportError:  # pragma: no cover - torch is a dependency today
-        from scipy.linalg import expm
+    if backend == "torch":
+        try:
+            import torch
+        except ImportError:  # torch missing: the SciPy path gives the same numbers, slower
+            backend = "scipy"
+        else:
+            return torch.linalg.matrix_exp(torch.from_numpy(np.ascontiguousarray(M))).numpy()
+    from scipy.linalg import expm
 
-        return expm(M)
-    return torch.linalg.matrix_exp(torch.from_numpy(np.ascontiguousarray(M))).numpy()
+    return expm(M)
 
 
 class LinearEvaluator:
@@ -116,7 +124,11 @@ class LinearEvaluator:
     parameters in ``columns`` (the others come back as 0).
     """
 
-    def __init__(self, model: Model, design: Design, columns: tuple[int, ...] | None = None) -> None:
+    def __init__(self, model: Model, design: Design, columns: tuple[int, ...] | None = None,
+                 backend: str = "torch") -> None:
+        if backend not in BACKENDS:
+            raise UsageError(f"backend must be one of {', '.join(BACKENDS)}, got {backend!r}")
+        self.backend = backend
         if not model.is_linear:
             raise UsageError(f"template {model.template.name!r} is not linear in its states")
         self.model = model
@@ -195,7 +207,7 @@ class LinearEvaluator:
             X = np.zeros((B, n_max, N))
             if np.any(big[:, :, N]) or np.any(w0[:, :N]):
                 t = np.where(d.mask[index], d.times[index], 0.0)  # (B, n_max)
-                E = _expm((big[:, None] * t[:, :, None, None]).reshape(-1, N + 1, N + 1))
+                E = _expm((big[:, None] * t[:, :, None, None]).reshape(-1, N + 1, N + 1), self.backend)
                 X += (E @ np.repeat(w0, n_max, axis=0)[..., None])[..., :N, 0].reshape(B, n_max, N)
             self._doses(theta, index, big, X, cols)
         return self._observe(theta, index, X, cols, jacobian)
@@ -275,7 +287,7 @@ class LinearEvaluator:
         Q = np.zeros((K, N + 1, N + 1))
         Q[:, :N, :N] = big[b, :N, :N]
         Q[:, :N, N] = inp
-        integral = _expm(Q * (mid - start)[:, None, None])[:, :N, N]
+        integral = _expm(Q * (mid - start)[:, None, None], self.backend)[:, :N, N]
         self._propagate(big, X, b, smp, tk - mid, integral)
         for a, rr in lag_of.items():
             on = np.isin(route, rr)
@@ -288,11 +300,11 @@ class LinearEvaluator:
             if after.any():
                 self._propagate(big, X, b[after], smp[after], (tk - end)[after], -v[after])
 
-    @staticmethod
-    def _propagate(big: Array, X: Array, b: NDArray[np.int64], smp: NDArray[np.int64], tau: Array, vec: Array) -> None:
+    def _propagate(self, big: Array, X: Array, b: NDArray[np.int64], smp: NDArray[np.int64], tau: Array,
+                   vec: Array) -> None:
         """X[b, smp] += e^{A τ} vec (homogeneous part of the block matrix)."""
         N = X.shape[2]
-        E = _expm(big[b, :N, :N] * tau[:, None, None])
+        E = _expm(big[b, :N, :N] * tau[:, None, None], self.backend)
         np.add.at(X, (b, smp), np.einsum("kij,kj->ki", E, vec))
 
     def _observe(self, theta: Array, index: NDArray[np.int64], X: Array, cols: tuple[int, ...], jacobian: bool
