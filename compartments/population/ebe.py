@@ -101,7 +101,7 @@ def solve_modes(pm: PopulationModel, design: Design, ev: Evaluator, m: Array, s:
         G = cur.J[:, :, R]
         grad = np.einsum("bn,bnq->bq", T.t_f, G) + 2 * eta @ oi
         A = np.einsum("bnq,bn,bnr->bqr", G, T.h, G) + 2 * oi[None]
-        step = -np.linalg.solve(A, grad[..., None])[..., 0]
+        step = -_solve(A, grad)
         step = np.clip(step, -3.0, 3.0)
         active = ~done & np.all(np.isfinite(step), axis=1)
         small = np.max(np.abs(step), axis=1) < tol
@@ -135,6 +135,20 @@ def solve_modes(pm: PopulationModel, design: Design, ev: Evaluator, m: Array, s:
         done |= stuck
     converged = done.copy()
     return Modes(cur, converged, it)
+
+
+def _solve(A: Array, g: Array) -> Array:
+    """Solve the stacked systems A x = g; a system that is singular or not finite gets x = nan."""
+    good = np.all(np.isfinite(A), axis=(1, 2)) & np.all(np.isfinite(g), axis=1)
+    out = np.full(g.shape, np.nan)
+    if good.any():
+        Ag = A[good] + 1e-12 * np.abs(A[good]).max(axis=(1, 2))[:, None, None] * np.eye(A.shape[1])[None]
+        try:
+            out[good] = np.linalg.solve(Ag, g[good][..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            for j, i in enumerate(np.flatnonzero(good)):
+                out[i] = np.linalg.lstsq(Ag[j], g[i], rcond=None)[0]
+    return out
 
 
 def _subset(p: Point, keep: NDArray[np.bool_]) -> Point:

@@ -178,9 +178,14 @@ def fit_foce(pm: PopulationModel, design: Design, ev: Evaluator, x0: Array, *, m
         key = x.tobytes()
         if key not in cache:
             cache.clear()
-            o = foce_objective(pm, design, ev, x, state["eta"])
+            try:
+                o = foce_objective(pm, design, ev, x, state["eta"])
+            except (np.linalg.LinAlgError, FloatingPointError, ValueError):  # an impossible point: no value
+                N = design.n_subjects
+                o = Objective(float("inf"), np.full(pm.size, np.nan), np.full(N, np.inf), np.zeros((N, pm.size)),
+                              None, np.zeros((N, pm.p)), np.zeros((N, pm.q, pm.q)), False)  # type: ignore[arg-type]
             state["n"] += 1
-            if np.isfinite(o.value) and o.value < state["best"]:
+            if np.isfinite(o.value) and o.value < state["best"] and o.modes is not None:
                 state["best"] = o.value
                 state["eta"] = o.modes.point.eta.copy()
             cache[key] = o
