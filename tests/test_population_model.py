@@ -16,7 +16,14 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from compartments import Dose, PopulationResult, UsageError, fit_population, load_template, read_study
+from compartments import (
+    Dose,
+    PopulationResult,
+    UsageError,
+    fit_population,
+    load_template,
+    read_study,
+)
 from compartments.estimate.problem import make_problem
 from compartments.model import compiled
 from compartments.population.design import build_design
@@ -279,3 +286,29 @@ class TestBadInput:
         study = read_study(frame, dose=100.0, route="oral")
         with pytest.raises(UsageError, match="changes within a subject"):
             fit_population(study, "one-comp-oral", random=["V"], covariates=[("V", "weight", "power")])
+
+
+class TestOptions:
+    @pytest.fixture(scope="class")
+    def study(self):
+        rng = np.random.default_rng(11)
+        rows = [{"id": i, "time": t, "conc": 100 / (20 * np.exp(0.3 * e)) * np.exp(-0.2 * t) * np.exp(0.1 * rng.standard_normal())}
+                for i, e in enumerate(rng.standard_normal(25)) for t in (1.0, 4.0, 8.0)]
+        return read_study(pd.DataFrame(rows), dose=100, route="iv")
+
+    def test_fixed_parameter_is_held(self, study):
+        """fixed={"ke": 0.2} holds ke; only V and its variability are estimated."""
+        p = fit_population(study, "one-comp-iv", random=["V"], error="lognormal", method="foce",
+                           starts="defaults", fixed={"ke": 0.2}, npde_draws=20)
+        assert list(p.typical) == ["V"] and p.model["fixed"] == {"ke": 0.2}
+        assert p.typical["V"] == pytest.approx(20, rel=0.15)
+
+    def test_sandwich_is_near_the_hessian_covariance(self, study):
+        """For a correctly specified model the sandwich and the inverse-Hessian SEs agree within
+        a factor of 2 (White 1982: both estimate the same covariance)."""
+        kw = dict(random=["V"], error="lognormal", method="foce", starts="defaults", npde_draws=20)
+        a = fit_population(study, "one-comp-iv", **kw)
+        b = fit_population(study, "one-comp-iv", covariance="sandwich", **kw)
+        assert b.covariance_method.startswith("sandwich")
+        for k in ("V", "ke", "var(V)"):
+            assert 0.5 < b.se[k] / a.se[k] < 2.0
