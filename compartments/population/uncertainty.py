@@ -72,6 +72,11 @@ class Reported:
 
 def reported(pm: PopulationModel, x: Array, cov: Array, level: float = 0.95) -> Reported:
     """Typical values, effects, variances and error parameters with SE / %RSE / CI."""
+    with np.errstate(over="ignore", invalid="ignore"):  # an unbounded interval end is inf
+        return _reported(pm, x, cov, level)
+
+
+def _reported(pm: PopulationModel, x: Array, cov: Array, level: float) -> Reported:
     z = float(stats.norm.ppf(0.5 + level / 2))
     sm, sb, sl, ss = pm.slices
     est: dict[str, float] = {}
