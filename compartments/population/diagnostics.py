@@ -65,7 +65,7 @@ def predictions_table(pm: PopulationModel, design: Design, ev: Evaluator, x: Arr
     cwres = np.full(design.mask.shape, np.nan)
     npde = np.full(design.mask.shape, np.nan)
     Gu = G * u_f[..., None]
-    sims = _simulate(pm, design, ev, x, rng, draws)  # (draws, N, n_max) on the error scale
+    sims = simulate_replicates(pm, design, ev, x, rng, draws)  # (draws, N, n_max) on the error scale
     for i in range(N):
         rows = np.flatnonzero(quant[i])
         if rows.size == 0:
@@ -110,9 +110,11 @@ def _decorrelate(C: Array, r: Array) -> Array:
     return np.linalg.solve(L, r)
 
 
-def _simulate(pm: PopulationModel, design: Design, ev: Evaluator, x: Array, rng: np.random.Generator,
+def simulate_replicates(pm: PopulationModel, design: Design, ev: Evaluator, x: Array, rng: np.random.Generator,
               draws: int) -> Array:
-    """Replicates of every subject's data on the error scale (draws, N, n_max)."""
+    """Replicates of every subject's data on the error scale (draws, N, n_max): new random
+    effects and new residuals at the estimate ``x`` (for NPDE; a visual predictive check
+    can use it with a design from :func:`compartments.population.fit.prepare`)."""
     N = design.n_subjects
     m, _ = pm.typical(x, N)
     s = pm.unpack(x).s

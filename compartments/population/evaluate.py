@@ -12,6 +12,7 @@ per batch row. A batched engine can replace it without changing the estimators.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Protocol
 
 import numpy as np
@@ -205,6 +206,7 @@ class LinearEvaluator:
                     big[:, blk, N] = bp[:, :, j]
                     w0[:, blk] = x0p[:, :, j]
             X = np.zeros((B, n_max, N))
+            self._eig = _decompose(A)
             if np.any(big[:, :, N]) or np.any(w0[:, :N]):
                 t = np.where(d.mask[index], d.times[index], 0.0)  # (B, n_max)
                 E = _expm((big[:, None] * t[:, :, None, None]).reshape(-1, N + 1, N + 1), self.backend)
@@ -302,10 +304,15 @@ class LinearEvaluator:
 
     def _propagate(self, big: Array, X: Array, b: NDArray[np.int64], smp: NDArray[np.int64], tau: Array,
                    vec: Array) -> None:
-        """X[b, smp] += e^{A τ} vec (homogeneous part of the block matrix)."""
+        """X[b, smp] += e^{𝒜 τ} vec (homogeneous part of the block matrix)."""
         N = X.shape[2]
-        E = _expm(big[b, :N, :N] * tau[:, None, None], self.backend)
-        np.add.at(X, (b, smp), np.einsum("kij,kj->ki", E, vec))
+        n = self.model.n_states
+        out, done = _eigen_response(big, self._eig, b, n, tau, vec)
+        rest = ~done
+        if rest.any():
+            E = _expm(big[b[rest], :N, :N] * tau[rest, None, None], self.backend)
+            out[rest] = np.einsum("kij,kj->ki", E, vec[rest])
+        np.add.at(X, (b, smp), out)
 
     def _observe(self, theta: Array, index: NDArray[np.int64], X: Array, cols: tuple[int, ...], jacobian: bool
                  ) -> tuple[Array, Array | None]:
@@ -333,6 +340,80 @@ class LinearEvaluator:
         if J is not None:
             J = np.where(mask[..., None], J, 0.0)
         return F, J
+
+
+#: Eigenvalues closer than this (relative) or an eigenvector matrix worse conditioned than
+#: ``EIGEN_COND`` send a pair to the matrix exponential instead.
+EIGEN_GAP = 1e-5
+EIGEN_COND = 1e8
+
+
+@dataclass(frozen=True)
+class _Eigen:
+    """Eigendecomposition of each batch row's A (``good`` False where it is not usable)."""
+
+    lam: Array
+    V: Array
+    Vi: Array
+    good: NDArray[np.bool_]
+
+
+def _decompose(A: Array) -> _Eigen:
+    """``A = V Λ V⁻¹`` per batch row; rows with close eigenvalues (relative gap below
+    ``EIGEN_GAP``) or an ill-conditioned V (condition above ``EIGEN_COND``) are marked."""
+    B, n, _ = A.shape
+    with np.errstate(all="ignore"):
+        lam, V = np.linalg.eig(A)
+        scale = np.maximum(np.max(np.abs(lam), axis=1), 1e-300)
+        gap = np.full(B, np.inf)
+        for i in range(n):
+            for j in range(i + 1, n):
+                gap = np.minimum(gap, np.abs(lam[:, i] - lam[:, j]) / scale)
+        good = np.isfinite(lam).all(axis=1) & (gap > EIGEN_GAP)
+        Vi = np.zeros_like(V)
+        if good.any():
+            Vi[good] = np.linalg.inv(V[good])
+        cond = np.linalg.norm(V, axis=(1, 2)) * np.linalg.norm(Vi, axis=(1, 2))
+        good &= np.isfinite(cond) & (cond < EIGEN_COND)
+    return _Eigen(lam, V, Vi, good)
+
+
+def _eigen_response(big: Array, eig: _Eigen, b: NDArray[np.int64], n: int, tau: Array, vec: Array
+                    ) -> tuple[Array, NDArray[np.bool_]]:
+    """``e^{𝒜τ} vec`` for the block matrix 𝒜 = [[A, 0], [D_j, A]] of states and sensitivities, by
+    the eigendecomposition ``A = V Λ V⁻¹`` of each pair's batch row ``b``: the state part is
+    ``V e^{Λτ} V⁻¹ x`` and each sensitivity block ``e^{Aτ} S_j + L(Aτ, D_j τ) x`` with the
+    Fréchet derivative ``L = V [(V⁻¹ D_j V) ∘ Φ] V⁻¹``, ``Φ_il = (e^{λ_i τ} − e^{λ_l τ})/(λ_i − λ_l)``
+    and ``Φ_ii = τ e^{λ_i τ}`` (Daleckii–Krein; Higham 2008, Functions of Matrices, §3.2).
+    Pairs whose row is not usable are left (``done`` False) for the matrix exponential."""
+    K, N = vec.shape
+    c = N // n - 1
+    out = np.zeros((K, N))
+    good = eig.good[b]
+    if not good.any():
+        return out, good
+    bg = b[good]
+    V, Vi, lam, t = eig.V[bg], eig.Vi[bg], eig.lam[bg], tau[good]
+    v = vec[good]
+    el = np.exp(lam * t[:, None])  # (k, n)
+    y = np.einsum("kij,kj->ki", Vi, v[:, :n])
+    res = np.zeros((V.shape[0], N), dtype=complex)
+    res[:, :n] = np.einsum("kij,kj->ki", V, el * y)
+    if c:
+        dl = lam[:, :, None] - lam[:, None, :]
+        with np.errstate(all="ignore"):
+            phi = (el[:, :, None] - el[:, None, :]) / dl
+        idx = np.arange(n)
+        phi[:, idx, idx] = t[:, None] * el
+        Bg = big[bg]
+        for a in range(c):
+            blk = slice(n * (a + 1), n * (a + 2))
+            D = Bg[:, blk, :n]
+            G = np.einsum("kij,kjl,klm->kim", Vi, D, V) * phi
+            ys = np.einsum("kij,kj->ki", Vi, v[:, blk])
+            res[:, blk] = np.einsum("kij,kj->ki", V, el * ys + np.einsum("kil,kl->ki", G, y))
+    out[good] = res.real
+    return out, good
 
 
 def make_evaluator(model: Model, design: Design, columns: tuple[int, ...]) -> Evaluator:
