@@ -171,7 +171,7 @@ def sparse_study():
 def sparse_fit(sparse_study):
     return fit_population(sparse_study, "one-comp-oral", random=["ka", "ke", "V"],
                           covariates=[("V", "weight", "power")], error="proportional", method="foce", seed=0,
-                          npde_draws=200)
+                          npde_draws=200, starts="defaults")
 
 
 class TestRecovery:
@@ -239,11 +239,11 @@ class TestDeterminism:
     def test_same_seed_same_numbers_serial_and_pool(self):
         """SAEM with the same seed gives identical numbers whether the start fits run serially
         or in a pool of two processes."""
-        study = read_study(sparse_oral(4, n=16), dose=100.0, route="oral")
+        study = read_study(sparse_oral(4, n=8), dose=100.0, route="oral")
         from compartments.population import SaemSettings
 
         kw = dict(random=["ka", "V"], error="proportional", method="saem", seed=3, npde_draws=20,
-                  importance_draws=100, saem=SaemSettings(min_explore=30, max_explore=40, smoothing=20))
+                  importance_draws=100, saem=SaemSettings(min_explore=20, max_explore=25, smoothing=10))
         a = fit_population(study, "one-comp-oral", workers=1, **kw)
         b = fit_population(study, "one-comp-oral", workers=2, **kw)
         np.testing.assert_array_equal(a.estimate_vector, b.estimate_vector)
@@ -251,10 +251,12 @@ class TestDeterminism:
         pd.testing.assert_frame_equal(a.predictions, b.predictions)
 
 
+@pytest.fixture(scope="module")
+def small_study():
+    return read_study(sparse_oral(5, n=6), dose=100.0, route="oral")
+
+
 class TestBadInput:
-    @pytest.fixture(scope="class")
-    def study(self):
-        return read_study(sparse_oral(5, n=6), dose=100.0, route="oral")
 
     @pytest.mark.parametrize("kwargs,words", [
         ({"random": ["CL"]}, "'CL' is not an estimated parameter"),
@@ -266,10 +268,10 @@ class TestBadInput:
         ({"random": ["V"], "method": "laplace"}, "method must be one of"),
         ({"random": ["V"], "variability": [["ka", "V"]]}, "'ka' has no random effect"),
     ])
-    def test_one_clear_message(self, study, kwargs, words):
+    def test_one_clear_message(self, small_study, kwargs, words):
         """Each mistake is refused with a message that names it."""
         with pytest.raises(UsageError, match=words):
-            fit_population(study, "one-comp-oral", **kwargs)
+            fit_population(small_study, "one-comp-oral", **kwargs)
 
     def test_missing_covariate_names_subjects(self):
         """A covariate missing for a subject is an error naming that subject."""
@@ -288,27 +290,30 @@ class TestBadInput:
             fit_population(study, "one-comp-oral", random=["V"], covariates=[("V", "weight", "power")])
 
 
-class TestOptions:
-    @pytest.fixture(scope="class")
-    def study(self):
-        rng = np.random.default_rng(11)
-        rows = [{"id": i, "time": t, "conc": 100 / (20 * np.exp(0.3 * e)) * np.exp(-0.2 * t) * np.exp(0.1 * rng.standard_normal())}
-                for i, e in enumerate(rng.standard_normal(25)) for t in (1.0, 4.0, 8.0)]
-        return read_study(pd.DataFrame(rows), dose=100, route="iv")
+@pytest.fixture(scope="module")
+def iv_study():
+    """15 subjects, 100 mg IV bolus, samples at 1, 4, 8 h; V 20 L (SD 0.3), ke 0.2 1/h, 10 % log-normal error."""
+    rng = np.random.default_rng(11)
+    rows = [{"id": i, "time": t, "conc": 100 / (20 * np.exp(0.3 * e)) * np.exp(-0.2 * t) * np.exp(0.1 * rng.standard_normal())}
+            for i, e in enumerate(rng.standard_normal(15)) for t in (1.0, 4.0, 8.0)]
+    return read_study(pd.DataFrame(rows), dose=100, route="iv")
 
-    def test_fixed_parameter_is_held(self, study):
+
+class TestOptions:
+
+    def test_fixed_parameter_is_held(self, iv_study):
         """fixed={"ke": 0.2} holds ke; only V and its variability are estimated."""
-        p = fit_population(study, "one-comp-iv", random=["V"], error="lognormal", method="foce",
+        p = fit_population(iv_study, "one-comp-iv", random=["V"], error="lognormal", method="foce",
                            starts="defaults", fixed={"ke": 0.2}, npde_draws=20)
         assert list(p.typical) == ["V"] and p.model["fixed"] == {"ke": 0.2}
         assert p.typical["V"] == pytest.approx(20, rel=0.15)
 
-    def test_sandwich_is_near_the_hessian_covariance(self, study):
+    def test_sandwich_is_near_the_hessian_covariance(self, iv_study):
         """For a correctly specified model the sandwich and the inverse-Hessian SEs agree within
         a factor of 2 (White 1982: both estimate the same covariance)."""
         kw = dict(random=["V"], error="lognormal", method="foce", starts="defaults", npde_draws=20)
-        a = fit_population(study, "one-comp-iv", **kw)
-        b = fit_population(study, "one-comp-iv", covariance="sandwich", **kw)
+        a = fit_population(iv_study, "one-comp-iv", **kw)
+        b = fit_population(iv_study, "one-comp-iv", covariance="sandwich", **kw)
         assert b.covariance_method.startswith("sandwich")
         for k in ("V", "ke", "var(V)"):
             assert 0.5 < b.se[k] / a.se[k] < 2.0

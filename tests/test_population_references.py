@@ -270,7 +270,7 @@ def theoph(theoph_frame):
 @pytest.fixture(scope="module")
 def theoph_fits(theoph):
     return {m: fit_population(theoph, "one-comp-oral", random=["ka", "V"], error="additive", method=m, seed=0,
-                              npde_draws=100, importance_draws=1000)
+                              npde_draws=50, importance_draws=500)
             for m in ("foce", "saem")}
 
 
