@@ -32,12 +32,14 @@ __all__ = [
     "FitError",
     "FitResult",
     "IdentifiabilityResult",
+    "PopulationResult",
     "SamplingDesign",
     "TemplateError",
     "UsageError",
     "compile_model",
     "design_samples",
     "fit",
+    "fit_population",
     "identifiability",
     "list_templates",
     "load_template",
@@ -62,6 +64,10 @@ def __getattr__(name: str) -> Any:
         from . import cohort
 
         return getattr(cohort, name)
+    if name in ("fit_population", "PopulationResult"):
+        from . import population
+
+        return getattr(population, name)
     if name == "read_study":
         from .study import read_study
 
