@@ -2,8 +2,10 @@
 
 The solving is done by :mod:`compartments.engine` (see there for the methods):
 
-* linear models (``f = A x + b``): exactly, by the matrix exponential of an augmented
-  matrix that also carries the constant inputs and, on request, the forward parameter
+* linear models (``f = A x + b``): exactly, by the eigen-decomposition of ``A(θ)`` with all
+  samples and doses at once and analytic sensitivities (:mod:`compartments.engine.linear`);
+  where eigenvalues are complex or nearly repeated, by the matrix exponential of an
+  augmented matrix that also carries the constant inputs and the forward parameter
   sensitivities (Van Loan's block construction; Van Loan 1978, IEEE TAC 23:395);
 * nonlinear models: LSODA (``scipy.integrate.odeint``; ``solve_ivp`` on request) on the
   states and the forward sensitivity equations ``dS/dt = f_x S + f_θ``.
@@ -106,7 +108,8 @@ def simulate(
     sensitivities : bool
         Also return ∂x/∂θ and ∂y/∂θ.
     method : {"auto", "expm", "ode", "ivp"}
-        ``auto`` uses the matrix exponential for linear models and ``ode`` otherwise.
+        ``auto`` uses the exact engine for linear models and ``ode`` otherwise; ``expm``
+        forces the augmented matrix exponential (the reference for linear models).
         ``ode`` integrates with LSODA through ``scipy.integrate.odeint``; ``ivp`` with LSODA
         through ``scipy.integrate.solve_ivp`` (slower; kept as a cross-check).
     rtol, atol : float

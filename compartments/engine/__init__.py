@@ -12,6 +12,10 @@ Modules
     Nonlinear models by LSODA with forward sensitivities.
 ``periodic``
     The periodic steady state of a regimen for the stepping paths.
+``kernels``, ``layout``, ``linear``
+    Linear models by the eigen-decomposition of ``A(θ)``, all samples and doses at once.
+``batch``
+    :func:`prepare` / :class:`Design`: many subjects laid out once, evaluated in one call.
 """
 
 from __future__ import annotations
@@ -41,16 +45,23 @@ def solve_states(model: Model, theta: Array, doses: Sequence[Dose] | Schedule, t
     Parameters
     ----------
     method : {"auto", "expm", "ode", "ivp"}
-        ``auto``: the exact path for linear models, LSODA through ``odeint`` otherwise;
-        ``expm``: augmented matrix exponentials (linear models only); ``ode`` / ``ivp``:
-        LSODA through ``odeint`` / ``solve_ivp``.
+        ``auto``: the eigen-decomposition engine for linear models (:mod:`.linear`, falling
+        back to the matrix exponential where it does not apply), LSODA through ``odeint``
+        otherwise; ``expm``: augmented matrix exponentials (linear models only, the
+        reference); ``ode`` / ``ivp``: LSODA through ``odeint`` / ``solve_ivp``.
     rtol, atol : float
         Integrator tolerances (``ode`` and ``ivp``).
     """
-    use_expm = model.is_linear if method == "auto" else method == "expm"
+    use_expm = method == "expm"
     if use_expm and not model.is_linear:
         raise UsageError(f"template {model.template.name!r} is nonlinear; the matrix exponential does not apply")
     schedule = doses if isinstance(doses, Schedule) else build_schedule(model, doses, lag_bounds(model, theta))
+    if method == "auto" and model.is_linear:
+        from .batch import prepare
+
+        design = prepare(model, [(schedule, t)], max_lag=lag_bounds(model, theta))
+        X, S, _ = design.states(theta[None, :], sensitivities=sens)
+        return X, S
     if use_expm:
         prop: stepping.Propagator = expm.ExpmPropagator(model, theta, sens)
 
@@ -74,3 +85,8 @@ def _scale(model: Model, theta: Array, schedule: Schedule) -> float:
     sizes += [abs(p.amount) for p in schedule.pulses]
     sizes += [abs(p.rate) for p in schedule.pulses]
     return max(sizes)
+
+
+from .batch import Design, prepare  # noqa: E402  (batch uses solve_states above)
+
+__all__ = ["METHODS", "Design", "prepare", "solve_states"]
