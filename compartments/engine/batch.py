@@ -91,12 +91,51 @@ class Design:
         free : sequence of int, optional
             Parameter indices to differentiate by (default: all, in template order).
         """
-        X, S, rows = self.states(theta, sensitivities=jacobian, free=free)
-        return _observe_rows(self, rows, X, S, free)
+        th, fr = self._rows(theta, free)
+        rows = th[self._subject]
+        if self.kernel is None or self.layout is None:
+            X, S = self._stepping(th, np.arange(self.n_subjects), jacobian, fr)
+            return _observe_rows(self, rows, X, S, fr)
+        X, sens, bad = linear.solve(self.model, self.kernel, self.layout, th, jacobian, fr)
+        y, gx, gp = _observed(self, X, rows, fr, jacobian)
+        J = None
+        if jacobian:
+            assert sens is not None and gx is not None and gp is not None
+            J = sens.project(gx) + gp
+        if bad.any():
+            Xb, Sb = self._stepping(th, np.flatnonzero(bad), jacobian, fr)
+            rb = np.concatenate([np.arange(self.offsets[s], self.offsets[s + 1]) for s in np.flatnonzero(bad)])
+            X[rb] = Xb
+            y, gx, gp = _observed(self, X, rows, fr, jacobian)
+            if J is not None and gx is not None and gp is not None and Sb is not None:
+                J[rb] = (gx[rb][:, :, None] * Sb).sum(axis=1) + gp[rb]
+        _check_finite(self.model, y, J)
+        return y, J
 
     def states(self, theta: Array, *, sensitivities: bool = False, free: Sequence[int] | None = None
                ) -> tuple[Array, Array | None, Array]:
         """States (T, n), their sensitivities (T, n, q) and the parameter row of each sample (T, p)."""
+        th, fr = self._rows(theta, free)
+        rows = th[self._subject]
+        if self.kernel is None or self.layout is None:
+            X, S = self._stepping(th, np.arange(self.n_subjects), sensitivities, fr)
+        else:
+            X, sens, bad = linear.solve(self.model, self.kernel, self.layout, th, sensitivities, fr)
+            S = sens.states() if sens is not None else None
+            if bad.any():
+                Xb, Sb = self._stepping(th, np.flatnonzero(bad), sensitivities, fr)
+                rb = np.concatenate([np.arange(self.offsets[s], self.offsets[s + 1]) for s in np.flatnonzero(bad)])
+                X[rb] = Xb
+                if S is not None and Sb is not None:
+                    S[rb] = Sb
+        _check_finite(self.model, X, S)
+        return X, S, rows
+
+    @property
+    def _subject(self) -> NDArray[np.int64]:
+        return np.repeat(np.arange(self.n_subjects), np.diff(self.offsets))
+
+    def _rows(self, theta: Array, free: Sequence[int] | None) -> tuple[Array, NDArray[np.int64]]:
         m = self.model
         th = np.asarray(theta, dtype=float)
         if th.ndim == 1:
@@ -104,25 +143,49 @@ class Design:
         if th.shape != (self.n_subjects, m.n_params):
             raise UsageError(f"theta must have shape ({self.n_subjects}, {m.n_params}) (one row per subject), "
                              f"got {th.shape}")
-        fr = np.arange(m.n_params) if free is None else np.asarray(free, dtype=np.int64)
-        subj = np.repeat(np.arange(self.n_subjects), np.diff(self.offsets))
-        rows = th[subj]
-        if self.layout is None or self.kernel is None:
-            X, S, bad = np.zeros((self.n_samples, m.n_states)), None, np.ones(self.n_subjects, bool)
-            if sensitivities:
-                S = np.zeros((self.n_samples, m.n_states, fr.size))
-        else:
-            X, S, bad = linear.solve(m, self.kernel, self.layout, th, sensitivities, fr)
-        for s in np.flatnonzero(bad):
-            a, b = self.offsets[s], self.offsets[s + 1]
-            Xs, Ss = _one_subject(m, th[s], self.schedules[s], self.times[s], sensitivities)
-            X[a:b] = Xs
-            if S is not None and Ss is not None:
-                S[a:b] = Ss[:, :, fr]
-        if not (np.all(np.isfinite(X)) and (S is None or np.all(np.isfinite(S)))):
-            raise SimulationError(f"simulation of {m.template.name!r} produced non-finite values; "
-                                  "the parameters may be extreme for this model")
-        return X, S, rows
+        return th, np.arange(m.n_params) if free is None else np.asarray(free, dtype=np.int64)
+
+    def _stepping(self, th: Array, subjects: NDArray[np.int64], sens: bool, fr: NDArray[np.int64]
+                  ) -> tuple[Array, Array | None]:
+        """States and sensitivities of some subjects by the event-stepping path, stacked."""
+        Xs, Ss = [], []
+        for s in subjects:
+            X, S = _one_subject(self.model, th[s], self.schedules[s], self.times[s], sens)
+            Xs.append(X)
+            Ss.append(None if S is None else S[:, :, fr])
+        n = self.model.n_states
+        X = np.concatenate(Xs) if Xs else np.zeros((0, n))
+        S = (np.concatenate(Ss) if Ss else np.zeros((0, n, fr.size))) if sens else None
+        return X, S
+
+
+def _check_finite(model: Model, a: Array, b: Array | None) -> None:
+    if not (np.all(np.isfinite(a)) and (b is None or np.all(np.isfinite(b)))):
+        raise SimulationError(f"simulation of {model.template.name!r} produced non-finite values; "
+                              "the parameters may be extreme for this model")
+
+
+def _observed(design: Design, X: Array, rows: Array, fr: NDArray[np.int64], grad: bool
+              ) -> tuple[Array, Array | None, Array | None]:
+    """The observable each sample measures (T,), its gradient in the states (T, n) and in the
+    free parameters (T, q), from the fused observation kernel."""
+    kernel = design.kernel
+    assert kernel is not None
+    obs = design.layout.sample_obs  # type: ignore[union-attr]
+    out = kernel.observe(X, rows)  # (m + m·n + m·p, T)
+    nm, n, p = kernel.m, kernel.n, kernel.p
+    if nm == 1:
+        y = out[0]
+        if not grad:
+            return y, None, None
+        return y, out[1:1 + n].T, out[1 + n:][fr].T
+    idx = np.arange(X.shape[0])
+    y = out[obs, idx]
+    if not grad:
+        return y, None, None
+    gx = out[nm + obs[:, None] * n + np.arange(n)[None, :], idx[:, None]]
+    gp = out[nm + nm * n + obs[:, None] * p + fr[None, :], idx[:, None]]
+    return y, gx, gp
 
 
 def _one_subject(model: Model, theta: Array, schedule: Schedule, t: Array, sens: bool
@@ -133,35 +196,25 @@ def _one_subject(model: Model, theta: Array, schedule: Schedule, t: Array, sens:
     return solve_states(model, theta, schedule, t, sens, method="expm" if model.is_linear else "ode")
 
 
-def _observe_rows(design: Design, rows: Array, X: Array, S: Array | None, free: Sequence[int] | None
+def _observe_rows(design: Design, rows: Array, X: Array, S: Array | None, fr: NDArray[np.int64]
                   ) -> tuple[Array, Array | None]:
-    """The observable each sample measures, and its Jacobian."""
+    """The observable each sample measures and its Jacobian, from the model's own functions
+    (nonlinear models)."""
     m = design.model
     obs = np.concatenate(design.obs_index) if design.obs_index else np.zeros(0, np.int64)
     T = X.shape[0]
-    kernel = design.kernel
-    if kernel is not None:
-        out = kernel.observe(X, rows)  # (m + m·n + m·p, T)
-        nm, n = kernel.m, kernel.n
-        idx = np.arange(T)
-        y = out[obs, idx]
-        if S is None:
-            return y, None
-        gx = out[nm + obs[:, None] * n + np.arange(n)[None, :], idx[:, None]]  # (T, n)
-        fr = np.arange(m.n_params) if free is None else np.asarray(free, dtype=np.int64)
-        gp = out[nm + nm * n + obs[:, None] * m.n_params + fr[None, :], idx[:, None]]  # (T, q)
-        return y, (gx[:, :, None] * S).sum(axis=1) + gp
     Y = m.observe(X.T, rows.T)
     y = Y[obs, np.arange(T)]
     if S is None:
+        _check_finite(m, y, None)
         return y, None
     gx = m.observe_jac_states(X.T, rows.T)
     gp = m.observe_jac_params(X.T, rows.T)
     gx = np.broadcast_to(gx if gx.ndim == 3 else gx[..., None], gx.shape[:2] + (T,))
     gp = np.broadcast_to(gp if gp.ndim == 3 else gp[..., None], gp.shape[:2] + (T,))
-    fr = np.arange(m.n_params) if free is None else np.asarray(free, dtype=np.int64)
     idx = np.arange(T)
     J = (gx[obs, :, idx][:, :, None] * S).sum(axis=1) + gp[obs, :, idx][:, fr]
+    _check_finite(m, y, J)
     return y, J
 
 

@@ -47,6 +47,7 @@ class Layout:
     sample_segment: Index
     sample_obs: Index
     sample_offsets: Index
+    sample_position: Index  # row of each sample within its subject
     seg_subject: Index
     seg_start: Array
     seg_steady: NDArray[np.bool_]
@@ -65,6 +66,12 @@ class Layout:
     real: NDArray[np.bool_]
     count: Index  # (G,) terms per segment
     active: Index  # (E,) segments with more than j terms
+    lag_params: tuple[int, ...]  # parameters that shift some term (lag times)
+
+    @property
+    def rows(self) -> Index:
+        """(G, 1) segment index, to pick per-segment orders with fancy indexing."""
+        return np.arange(self.kind.shape[0])[:, None]
 
     @property
     def n_segments(self) -> int:
@@ -128,10 +135,12 @@ def build_layout(model: Model, schedules: Sequence[Schedule], times: Sequence[Ar
         sample_segment=rank[np.concatenate(seg_all).astype(np.int64)] if seg_all else empty,
         sample_obs=np.concatenate(obs_all) if obs_all else empty,
         sample_offsets=np.array(offsets, dtype=np.int64),
+        sample_position=np.concatenate([np.arange(t.size) for t in t_all]).astype(np.int64) if t_all else empty,
         seg_subject=seg[:, 0].astype(np.int64), seg_start=seg[:, 1], seg_steady=seg[:, 2].astype(bool),
         seg_route=seg[:, 3].astype(np.int64), seg_amount=seg[:, 4], seg_rate=seg[:, 5], seg_duration=seg[:, 6],
         seg_interval=seg[:, 7], seg_tail=seg[:, 8].astype(np.int64),
         kind=ints[:, :, 0], time=pad[:, :, 1], route=ints[:, :, 2], state=ints[:, :, 3], size=pad[:, :, 4],
         lag=ints[:, :, 5], real=real, count=count[order],
         active=(count[order][None, :] > np.arange(E)[:, None]).sum(axis=1).astype(np.int64),
+        lag_params=tuple(sorted({int(j) for j in ints[:, :, 5].ravel() if j >= 0})),
     )

@@ -66,7 +66,7 @@ class Parts:
     bad: NDArray[np.bool_]  # (N,) subjects this path does not cover
 
 
-def parts(kernel: LinearKernel, theta: Array, free: NDArray[np.int64] | None) -> Parts:
+def parts(kernel: LinearKernel, theta: Array, free: NDArray[np.int64] | None, sens: bool = True) -> Parts:
     """Unpack the fused kernel and decompose ``A`` for every subject."""
     n, p = kernel.n, kernel.p
     N = theta.shape[0]
@@ -107,7 +107,7 @@ def parts(kernel: LinearKernel, theta: Array, free: NDArray[np.int64] | None) ->
         lam[bad] = -np.arange(1.0, n + 1.0)
     W = np.linalg.inv(V)
     q = np.arange(p) if free is None else free
-    G = W[:, None] @ Ap[:, q] @ V[:, None]
+    G = mat_mat(mat_mat(W[:, None], Ap[:, q]), V[:, None]) if sens else None
     return Parts(lam, V, W, G, b, bp[:, :, q], x0, x0p[:, :, q], F, dF[:, :, q], bad)
 
 
@@ -201,30 +201,35 @@ def steady_start(model: Model, layout: Layout, pt: Parts, theta: Array, free: ND
     return c, dc
 
 
-def _term_vectors(layout: Layout, pt: Parts, c_ss: Array, dc_ss: Array) -> tuple[Array, Array | None]:
+def _term_vectors(layout: Layout, pt: Parts, c_ss: Array, dc_ss: Array, with_dc: bool = True
+                  ) -> tuple[Array, Array | None]:
     """Eigen-coordinates of every term's vector (G, E, n) and their parameter derivatives (G, E, n, q)."""
     kind, subj = layout.kind, layout.seg_subject
     G, E = kind.shape
     n, q = pt.lam.shape[1], pt.bp.shape[2]
     c = np.zeros((G, E, n))
-    dc = np.zeros((G, E, n, q))
+    dc = np.zeros((G, E, n, q)) if with_dc else None
     dose = (kind == BOLUS) | (kind == ON) | (kind == OFF)
     if dose.any():
         g, e = np.nonzero(dose)
         sd, r = subj[g], layout.route[g, e]
         col = pt.W[sd, :, layout.state[g, e]]
         c[g, e] = col * (layout.size[g, e] * pt.F[r, sd])[:, None]
-        dc[g, e] = col[:, :, None] * (layout.size[g, e][:, None] * pt.dF[r, sd])[:, None, :]
+        if dc is not None:
+            dc[g, e] = col[:, :, None] * (layout.size[g, e][:, None] * pt.dF[r, sd])[:, None, :]
     Wg = pt.W[subj]  # START is every segment's first term (as laid out)
-    c[:, 0] = np.einsum("gkl,gl->gk", Wg, pt.x0[subj])
-    dc[:, 0] = np.einsum("gkl,glj->gkj", Wg, pt.x0p[subj])
+    c[:, 0] = mat_vec(Wg, pt.x0[subj])
     steady = np.flatnonzero(layout.seg_steady)
-    c[steady, 0], dc[steady, 0] = c_ss, dc_ss
+    c[steady, 0] = c_ss
+    if dc is not None:
+        dc[:, 0] = mat_mat(Wg, pt.x0p[subj])
+        dc[steady, 0] = dc_ss
     if (kind == INPUT).any():
         g, e = np.nonzero(kind == INPUT)
-        c[g, e] = np.einsum("gkl,gl->gk", pt.W[subj[g]], pt.b[subj[g]])
-        dc[g, e] = np.einsum("gkl,glj->gkj", pt.W[subj[g]], pt.bp[subj[g]])
-    return c, (dc if np.any(dc) else None)
+        c[g, e] = mat_vec(pt.W[subj[g]], pt.b[subj[g]])
+        if dc is not None:
+            dc[g, e] = mat_mat(pt.W[subj[g]], pt.bp[subj[g]])
+    return c, (dc if dc is not None and np.any(dc) else None)
 
 
 def _sorted_terms(layout: Layout, theta: Array) -> tuple[Array, NDArray[np.int64]]:
@@ -234,7 +239,7 @@ def _sorted_terms(layout: Layout, theta: Array) -> tuple[Array, NDArray[np.int64
     shift = np.where(layout.lag >= 0, theta[subj[:, None], np.maximum(layout.lag, 0)], 0.0)
     s = np.where(layout.real, layout.time + shift, np.inf)
     order = np.lexsort((layout.kind != START, s), axis=-1)
-    s = np.take_along_axis(s, order, axis=1)
+    s = s[layout.rows, order]
     last = s[np.arange(s.shape[0]), layout.count - 1]
     s = np.where(layout.real, s, last[:, None])
     return s, order
@@ -249,9 +254,9 @@ def _scan(layout: Layout, lam: Array, s: Array, order: NDArray[np.int64], c: Arr
     rates, ``Q`` (``Qₖₗ``), ``D`` (diagonal divided differences), ``dZ``/``dR`` (term vectors'
     own derivatives), ``L`` (∂/∂τ of the terms shifted by each free lag parameter).
     """
-    kind = np.take_along_axis(layout.kind, order, axis=1)
-    lagp = np.take_along_axis(layout.lag, order, axis=1)
-    c = np.take_along_axis(c, order[:, :, None], axis=1)
+    kind = layout.kind[layout.rows, order]
+    lagp = layout.lag[layout.rows, order]
+    c = c[layout.rows, order]
     impulse = ((kind == START) | (kind == BOLUS))[:, :, None]
     cZ, cR = c * impulse, c * ~impulse
     G, E, n = c.shape
@@ -269,25 +274,38 @@ def _scan(layout: Layout, lam: Array, s: Array, order: NDArray[np.int64], c: Arr
         out["Q"][:, 0] = cZ[:, 0, None, :]
         out["D"] = np.zeros((G, E, n))
         if dc is not None:
-            dc = np.take_along_axis(dc, order[:, :, None, None], axis=1)
+            dc = dc[layout.rows, order]
             out["dZ"], out["dR"] = dc * impulse[..., None], np.cumsum(dc * ~impulse[..., None], axis=1)
         for k, (j, _) in enumerate(lag_free):
             hit = (lagp == j)[:, :, None]
             out[f"L{k}"] = np.where(hit, np.where(impulse, lamg * c, c), 0.0)
+    diag = np.arange(n)
     for j in range(1, E):
         a = int(layout.active[j])
         e, pj = ex[:a, j], ps[:a, j]
-        Z[:a, j] += e * Z[:a, j - 1] + pj * R[:a, j - 1]
         if not sens:
+            Z[:a, j] += e * Z[:a, j - 1]
+            if steps:
+                Z[:a, j] += pj * R[:a, j - 1]
             continue
         Q = out["Q"]
-        Q[:a, j] = e[:, :, None] * Q[:a, j - 1] + pj[:, :, None] * R[:a, j - 1, None, :] + cZ[:a, j, None, :]
-        out["D"][:a, j] = e * (out["D"][:a, j - 1] + delta[:a, j] * Z[:a, j - 1]) + pp[:a, j] * R[:a, j - 1]
+        prev = Q[:a, j - 1]
+        zp = prev[:, diag, diag]  # the state: Qₗₗ = zₗ
+        new = e[:, :, None] * prev
+        new += cZ[:a, j, None, :]
+        D = e * (out["D"][:a, j - 1] + delta[:a, j] * zp)
+        if steps:
+            new += pj[:, :, None] * R[:a, j - 1, None, :]
+            D += pp[:a, j] * R[:a, j - 1]
+        Q[:a, j] = new
+        out["D"][:a, j] = D
         if dc is not None:
             out["dZ"][:a, j] += e[:, :, None] * out["dZ"][:a, j - 1] + pj[:, :, None] * out["dR"][:a, j - 1]
         for k in range(len(lag_free)):
             L = out[f"L{k}"]
             L[:a, j] += e * L[:a, j - 1]
+    if sens:
+        out["Z"] = out["Q"][:, :, diag, diag]
     return out
 
 
@@ -296,7 +314,7 @@ def _at_samples(layout: Layout, lam: Array, s: Array, order: NDArray[np.int64], 
     """The running sums carried from each sample's last term to the sample's time."""
     g = layout.sample_segment
     t = layout.t
-    kind = np.take_along_axis(layout.kind, order, axis=1)[g]
+    kind = layout.kind[g[:, None], order[g]]
     before = (s[g] < t[:, None]) | ((s[g] == t[:, None]) & (kind == START))
     m = np.minimum(before.sum(axis=1), layout.count[g]) - 1
     delta = (t - s[g, m])[:, None]
@@ -319,21 +337,63 @@ def _at_samples(layout: Layout, lam: Array, s: Array, order: NDArray[np.int64], 
     return out
 
 
+@dataclass
+class Sensitivities:
+    """What the sensitivities of every sample are made of, in eigen-coordinates: ``∂x/∂θⱼ =
+    V [Σₗ Gⱼ[k, l] H[k, l] + extra[k, j]]``. :meth:`states` forms them all (T, n, q);
+    :meth:`project` only ``u · ∂x/∂θ`` for one row ``u`` per sample (an observable's
+    gradient), which is what a Jacobian needs and costs a fraction of it."""
+
+    V: Array  # (T, n, n)
+    H: Array  # (T, n, n)
+    G: Array  # (N, q, n, n)
+    extra: Array | None  # (T, n, q)
+    subject: NDArray[np.int64]  # (T,)
+    position: NDArray[np.int64]  # (T,) row of each sample within its subject
+
+    def states(self) -> Array:
+        Gt = self.G[self.subject]  # (T, q, n, n)
+        n = self.H.shape[1]
+        dz = Gt[:, :, :, 0] * self.H[:, None, :, 0]
+        for i in range(1, n):
+            dz += Gt[:, :, :, i] * self.H[:, None, :, i]
+        dz = dz.transpose(0, 2, 1)
+        if self.extra is not None:
+            dz = dz + self.extra
+        return mat_mat(self.V, dz)
+
+    def project(self, u: Array) -> Array:
+        """``u · ∂x/∂θ`` (T, q) for rows ``u`` (T, n) in natural coordinates."""
+        w = (u[:, :, None] * self.V).sum(axis=1)  # u V: (T, n)
+        T, n = w.shape
+        N, q = self.G.shape[0], self.G.shape[1]
+        M = (w[:, :, None] * self.H).reshape(T, n * n)
+        pad = np.zeros((N, int(self.position.max(initial=0)) + 1, n * n))
+        pad[self.subject, self.position] = M
+        Gf = self.G.reshape(N, q, n * n).transpose(0, 2, 1)
+        out = (pad @ Gf)[self.subject, self.position]  # (T, q)
+        if self.extra is not None:
+            out += (w[:, :, None] * self.extra).sum(axis=1)
+        return out
+
+
 def solve(model: Model, kernel: LinearKernel, layout: Layout, theta: Array, sens: bool,
-          free: NDArray[np.int64] | None = None) -> tuple[Array, Array | None, NDArray[np.bool_]]:
-    """States (T, n), their sensitivities to the free parameters (T, n, q) and the subjects
-    this path does not cover (N,), for parameter rows ``theta`` (N, p)."""
+          free: NDArray[np.int64] | None = None
+          ) -> tuple[Array, Sensitivities | None, NDArray[np.bool_]]:
+    """States (T, n), their sensitivities to the free parameters (see :class:`Sensitivities`)
+    and the subjects this path does not cover (N,), for parameter rows ``theta`` (N, p)."""
     fr = np.arange(kernel.p) if free is None else np.asarray(free, dtype=np.int64)
-    pt = parts(kernel, theta, fr)
+    pt = parts(kernel, theta, fr, sens)
     n, q = kernel.n, fr.size
     if layout.seg_steady.any():
         c_ss, dc_ss = steady_start(model, layout, pt, theta, fr, sens)
     else:
         c_ss, dc_ss = np.zeros((0, n)), np.zeros((0, n, q))
-    c, dc = _term_vectors(layout, pt, c_ss, dc_ss)
+    c, dc = _term_vectors(layout, pt, c_ss, dc_ss, sens and not (kernel.dF_zero and kernel.x0_zero
+                                                                 and not kernel.has_input and not c_ss.size))
     lam = pt.lam[layout.seg_subject]
     s, order = _sorted_terms(layout, theta)
-    lag_params = {int(j) for j in np.unique(layout.lag) if j >= 0}
+    lag_params = set(layout.lag_params)
     lag_free = [(int(j), i) for i, j in enumerate(fr) if int(j) in lag_params]
     sums = _scan(layout, lam, s, order, c, dc, lag_free, sens)
     at = _at_samples(layout, lam, s, order, sums, sens)
@@ -344,16 +404,13 @@ def solve(model: Model, kernel: LinearKernel, layout: Layout, theta: Array, sens
         return X, None, pt.bad
     H = _difference_quotients(at["Q"], at["z"], pt.lam[st])
     H[:, np.arange(n), np.arange(n)] = at["D"]
-    Gt = pt.G[st]  # (T, q, n, n)
-    dz = Gt[:, :, :, 0] * H[:, None, :, 0]
-    for i in range(1, n):
-        dz += Gt[:, :, :, i] * H[:, None, :, i]
-    dz = dz.transpose(0, 2, 1)  # (T, n, q)
-    if "dz" in at:
-        dz = dz + at["dz"]
+    extra = at.get("dz")
     for k, (_, i) in enumerate(lag_free):
-        dz[:, :, i] -= at[f"L{k}"]
-    return X, mat_mat(V, dz), pt.bad
+        if extra is None:
+            extra = np.zeros((st.size, n, q))
+        extra[:, :, i] -= at[f"L{k}"]
+    assert pt.G is not None
+    return X, Sensitivities(V, H, pt.G, extra, st, layout.sample_position), pt.bad
 
 
 def mat_vec(M: Array, v: Array) -> Array:
