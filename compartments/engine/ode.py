@@ -62,34 +62,45 @@ class OdePropagator:
         self.model, self.theta, self.sens = model, theta, sens
         self.rtol, self.atol, self.integrate = rtol, atol, integrate
         self.budget = max_evaluations
-        self._fast = model.rhs_point(theta, sens)
 
     def _fun(self, cols: int) -> Callable:
         n, p = self.model.n_states, self.model.n_params
         model, theta = self.model, self.theta
         if cols in (0, p):
-            fast = self._fast if cols == p or not self.sens else self.model.rhs_point(theta, False)
+            # the integrator's inner loop: one generated call on Python floats, no other layer
+            # (benchmarks/README.md, "Nonlinear templates")
+            gen = model._aug if cols else model._flat
+            th = [float(v) for v in theta]
+            assert gen is not None
 
-            def rhs(z: Array) -> Array:
-                return fast(z)
-        else:
-            def rhs(z: Array) -> Array:
-                x = z[:n]
-                W = z[n:].reshape(cols, n).T
-                fp = np.zeros((n, cols))
-                fp[:, :p] = model.jac_params(x, theta)
-                return np.concatenate([model.rhs(x, theta), (model.jac_states(x, theta) @ W + fp).T.reshape(-1)])
+            def fun(_t: float, z: Array, c: Array | None) -> Array:
+                self.budget -= 1
+                if self.budget < 0:
+                    raise _Budget
+                out = np.array(gen(*z.tolist(), *th), dtype=float)
+                if c is not None:  # constant inputs (infusions) on the states and their sensitivities
+                    out += c
+                return out
 
-        def fun(_t: float, z: Array, c: Array | None) -> Array:
+            return fun
+
+        def rhs(z: Array) -> Array:
+            x = z[:n]
+            W = z[n:].reshape(cols, n).T
+            fp = np.zeros((n, cols))
+            fp[:, :p] = model.jac_params(x, theta)
+            return np.concatenate([model.rhs(x, theta), (model.jac_states(x, theta) @ W + fp).T.reshape(-1)])
+
+        def slow(_t: float, z: Array, c: Array | None) -> Array:
             self.budget -= 1
             if self.budget < 0:
                 raise _Budget
             out = rhs(z)
-            if c is not None:  # constant inputs (infusions) on the states and their sensitivities
+            if c is not None:
                 out += c
             return out
 
-        return fun
+        return slow
 
     def _jac(self, cols: int) -> Callable:
         n, model, theta = self.model.n_states, self.model, self.theta
