@@ -278,7 +278,8 @@ def _scan(layout: Layout, lam: Array, s: Array, order: NDArray[np.int64], c: Arr
             out["dZ"], out["dR"] = dc * impulse[..., None], np.cumsum(dc * ~impulse[..., None], axis=1)
         for k, (j, _) in enumerate(lag_free):
             hit = (lagp == j)[:, :, None]
-            out[f"L{k}"] = np.where(hit, np.where(impulse, lamg * c, c), 0.0)
+            with np.errstate(over="ignore", invalid="ignore"):  # extreme rates: caught as non-finite
+                out[f"L{k}"] = np.where(hit, np.where(impulse, lamg * c, c), 0.0)
     diag = np.arange(n)
     for j in range(1, E):
         a = int(layout.active[j])
@@ -381,7 +382,15 @@ def solve(model: Model, kernel: LinearKernel, layout: Layout, theta: Array, sens
           free: NDArray[np.int64] | None = None
           ) -> tuple[Array, Sensitivities | None, NDArray[np.bool_]]:
     """States (T, n), their sensitivities to the free parameters (see :class:`Sensitivities`)
-    and the subjects this path does not cover (N,), for parameter rows ``theta`` (N, p)."""
+    and the subjects this path does not cover (N,), for parameter rows ``theta`` (N, p).
+
+    Extreme parameters may overflow: the caller checks the results are finite and says so."""
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        return _solve(model, kernel, layout, theta, sens, free)
+
+
+def _solve(model: Model, kernel: LinearKernel, layout: Layout, theta: Array, sens: bool,
+           free: NDArray[np.int64] | None) -> tuple[Array, Sensitivities | None, NDArray[np.bool_]]:
     fr = np.arange(kernel.p) if free is None else np.asarray(free, dtype=np.int64)
     pt = parts(kernel, theta, fr, sens)
     n, q = kernel.n, fr.size
