@@ -33,7 +33,9 @@ lint: $(TSTAMP)
 	$(BIN)/ruff check compartments tests benchmarks demo
 
 bench: $(TSTAMP)
+	$(BIN)/python benchmarks/speed.py
 	$(BIN)/python benchmarks/simulate.py
+	$(BIN)/python benchmarks/nonlinear_rhs.py
 	$(BIN)/python benchmarks/ode_driver.py
 	$(BIN)/python benchmarks/estimator.py
 	$(BIN)/python benchmarks/cohort.py

@@ -151,13 +151,8 @@ class Subject(_Picklable):
         return replace(self, **changes)
 
     def in_time_unit(self, factor: float) -> Subject:
-        """A copy with times, dose times, durations and rates scaled to another unit."""
-        doses = tuple(
-            Dose(d.time * factor, d.amount, d.route,
-                 duration=None if d.duration is None else d.duration * factor,
-                 rate=None if d.rate is None else d.rate / factor)
-            for d in self.doses
-        )
+        """A copy with times, dose times, durations, intervals and rates scaled to another unit."""
+        doses = tuple(d.in_time_unit(factor) for d in self.doses)
         return self.with_(times=self.times * factor, doses=doses)
 
 

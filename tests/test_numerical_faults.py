@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 from cli_run import run
 
-import compartments.simulate as simulate_module
+import compartments.engine.ode as ode_module
 from compartments import Dose, fit, load_template, read_study
 from compartments.model import compiled
 from compartments.simulate import simulate
@@ -140,14 +140,14 @@ class TestOverflow:
 
 def _broken_solver(monkeypatch: pytest.MonkeyPatch) -> None:
     """The ODE integrator reports failure on every call (as LSODA does when the step underflows)."""
-    real = simulate_module.odeint
+    real = ode_module.odeint
 
     def failing(*args, **kwargs):  # noqa: ANN002, ANN003, ANN202
         y, info = real(*args, **kwargs)
         info["message"] = "step size became too small (simulated failure)"
         return y, info
 
-    monkeypatch.setattr(simulate_module, "odeint", failing)
+    monkeypatch.setattr(ode_module, "odeint", failing)
 
 
 IV_ROWS = "subject,time,conc\n" + csv_rows(TIMES, 25.0 * np.exp(-0.15 * TIMES))
@@ -179,7 +179,7 @@ class TestFailingIntegrator:
         def boom(*args, **kwargs):  # noqa: ANN002, ANN003, ANN202
             raise RuntimeError("boom inside the integrator")
 
-        monkeypatch.setattr(simulate_module, "odeint", boom)
+        monkeypatch.setattr(ode_module, "odeint", boom)
         code, doc, _ = fit_cli(tmp_path, IV_ROWS, "--model", "one-comp-iv,one-comp-mm", "--dose", "100",
                                "--route", "iv", "--strategy", "nls", capfd=capfd)
         assert code == 3
